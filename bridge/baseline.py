@@ -9,8 +9,8 @@ The practice of capacitive sensing (DOMAIN.md section 3), for a sensor where a h
                                than max_follow_c_per_s in the hand's direction
               z < -reverse     a reading "beyond empty": the baseline is wrong, so it
                                recovers fast (recover_tau_s) and, if that lasts
-                               rebase_after_s, jumps to the reading (a hand was near at
-                               power-up, or the room changed)
+                               rebase_after_s, jumps to the mean of those readings (a
+                               hand was near at power-up, or the room changed)
               z > on           not followed; after debounce_frames in a row: present
     present:  baseline frozen; after debounce_frames in a row below off: absent
 
@@ -100,6 +100,7 @@ class BaselineTracker:
         "_present",
         "_run",
         "_rev_run",
+        "_rev_sum",
         "_inv_sigma",
         "_on",
         "_off",
@@ -141,6 +142,7 @@ class BaselineTracker:
         self._present = False
         self._run = 0
         self._rev_run = 0
+        self._rev_sum = 0.0
 
     def _set_sigma(self) -> None:
         sigma_c = max(self.noise / self._base, self.settings.noise_floor_c)
@@ -176,12 +178,12 @@ class BaselineTracker:
                 if self._run >= self._debounce:
                     self._present = False
                     self._run = 0
-                    self._rev_run = 0
             else:
                 self._run = 0
             return base
         if z > self._on:
             self._rev_run = 0
+            self._rev_sum = 0.0
             self._run += 1
             if self._run >= self._debounce:
                 self._present = True
@@ -190,13 +192,18 @@ class BaselineTracker:
         self._run = 0
         if z < self._rev:
             self._rev_run += 1
+            self._rev_sum += raw
             if self._rev_run >= self._rebase_frames:
-                log.info("re-baseline after a sustained reverse reading: %.6g -> %.6g", base, raw)
+                # the mean of the reverse run: less noisy than the last reading alone
+                mean = self._rev_sum / self._rev_run
+                log.info("re-baseline after a sustained reverse reading: %.6g -> %.6g", base, mean)
                 self._rev_run = 0
-                return self._rebase_to(raw)
+                self._rev_sum = 0.0
+                return self._rebase_to(mean)
             base += (raw - base) * self._a_fast
         else:
             self._rev_run = 0
+            self._rev_sum = 0.0
             step = (raw - base) * self._a_slow
             if c > 0.0:  # toward the hand: capped so a hovering hand fades slowly at most
                 cap = self._cap_c * base
@@ -223,6 +230,7 @@ class BaselineTracker:
         self._present = False
         self._run = 0
         self._rev_run = 0
+        self._rev_sum = 0.0
 
 
 class ReferenceCorrector:

@@ -83,6 +83,10 @@ QUANT_NOISE = 1.0 / math.sqrt(12.0)
 S_MIN = 1e-3
 S_MAX = 1e3
 
+#: Largest exponent a fitted power law may have; beyond it the points describe something
+#: else (the fit is then refused and the monotone cubic used).
+ALPHA_MAX = 20.0
+
 #: With three or more points the power law is kept when it misses no captured point by
 #: more than this fraction of the range; otherwise the monotone cubic is used.
 POWER_FIT_TOL = 0.03
@@ -311,6 +315,12 @@ class _PowerCurve:
         self.c0 = a / (1.0 + s) ** alpha  # c at position 0 (far)
         self.c1 = a / s**alpha  # c at position 1 (near)
 
+    def __eq__(self, other: object) -> bool:
+        # lets two calibrations with the same fitted law compare equal
+        if not isinstance(other, _PowerCurve):
+            return NotImplemented
+        return (self.a, self.s, self.alpha) == (other.a, other.s, other.alpha)
+
     def position(self, c: float) -> float:
         if not c > self.c0:  # also catches NaN
             return 0.0
@@ -331,6 +341,12 @@ class _KnotCurve:
     def __init__(self, curve: Pchip, shift: float | None):
         self.curve, self.shift = curve, shift
         self.v0 = math.exp(curve.xs[0]) if shift is not None else curve.xs[0]
+
+    def __eq__(self, other: object) -> bool:
+        if not isinstance(other, _KnotCurve):
+            return NotImplemented
+        a, b = self.curve, other.curve
+        return (self.shift, a.xs, a.ys, a.d) == (other.shift, b.xs, b.ys, b.d)
 
     def position(self, c: float) -> float:
         shift = self.shift
@@ -667,6 +683,10 @@ def _fit(
             notes.append("two points only: inverse-distance law (alpha 1) assumed")
         else:
             params, err = _fit_power_many(p, c)
+            if not params:
+                raise CalibrationError(
+                    "no power law fits these points: use model 'pchip' or 'auto'"
+                )
         return "power", params, err, notes
     if model == "pchip":
         # keep log finite: shift every c above zero by at least one noise unit
@@ -745,8 +765,14 @@ def _fit_power_many(p: np.ndarray, c: np.ndarray) -> tuple[dict[str, float], flo
             f2 = f(x2)
     best = np.array([0.5 * (lo + hi)])
     _, log_a, alpha = _power_sse(best, u, y)
-    a, s, al = float(np.exp(log_a[0])), float(np.exp(best[0])), float(alpha[0])
-    curve = _PowerCurve(a, s, al)
+    s, al = float(np.exp(best[0])), float(alpha[0])
+    try:
+        a = math.exp(float(log_a[0]))
+        curve = _PowerCurve(a, s, al)
+    except OverflowError:  # the points ask for an exponential, not a power law
+        return {}, math.inf
+    if not (0.0 < al <= ALPHA_MAX and 0.0 < curve.c0 < curve.c1 < math.inf):
+        return {}, math.inf
     err = max(abs(curve.position(float(ci)) - float(pi)) for ci, pi in zip(c, p))
     return {"a": a, "s": s, "alpha": al}, err
 

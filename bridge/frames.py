@@ -159,22 +159,25 @@ class FrameSettings(BaseModel):
     model_config = ConfigDict(extra="forbid")
 
     format: Literal["text", "binary"] = Field(
-        "text", description="text: one line of numbers per frame; binary: COBS packets with CRC"
+        default="text",
+        description="text: one line of numbers per frame; binary: COBS packets with CRC",
     )
     leading_seq: bool = Field(
-        False, description="text only: each line starts with a sequence number (binary always has one)"
+        default=False,
+        description="text only: each line starts with a sequence number (binary always has one)",
     )
     max_line: int = Field(
-        256,
+        default=256,
         ge=MIN_MAX_LINE,
         le=MAX_MAX_LINE,
-        description="text only: longest line in bytes, line ending not counted; longer lines are dropped",
+        description="text only: longest line in bytes, without its line ending; longer are dropped",
     )
     newline: Literal["lf", "crlf"] = Field(
-        "lf", description="line ending the simulator writes; decoding accepts both"
+        default="lf", description="line ending the simulator writes; decoding accepts both"
     )
     kind: ValueKind = Field(
-        "count", description="what every channel's numbers are: pulses per window or ticks per period"
+        default="count",
+        description="what every channel's numbers are: pulses per window or ticks per period",
     )
     channel_kinds: dict[str, ValueKind] = Field(
         default_factory=dict, description="per-channel exceptions to `kind`, by channel name"
@@ -320,6 +323,8 @@ class TextDecoder(_Decoder):
         out: list[Frame] = []
         if not data:
             return out
+        if data.__class__ is not bytes:  # a bytearray or memoryview from a transport
+            data = bytes(data)
         data = data.translate(_SEP_TABLE)
         if self._skipping:
             rest = self._skip_to_delimiter(data)
@@ -494,6 +499,8 @@ class BinaryDecoder(_Decoder):
         out: list[Frame] = []
         if not data:
             return out
+        if data.__class__ is not bytes:  # a bytearray or memoryview from a transport
+            data = bytes(data)
         if self._skipping:
             rest = self._skip_to_delimiter(data)
             if rest is None:

@@ -287,6 +287,7 @@ class RecordingSource:
             self._pending = self._next_chunk()
             if self._pending is None:
                 self._finished = True
+                self._close_file()
                 self._finish("end of recording")
                 return b""
         t, data = self._pending
@@ -313,9 +314,7 @@ class RecordingSource:
     def close(self) -> None:
         """Stop and close the file. Safe to call twice."""
         self._stop.set()
-        fh, self._fh = self._fh, None
-        if fh is not None:
-            fh.close()
+        self._close_file()
         self._finish("closed")
 
     def __enter__(self) -> RecordingSource:
@@ -328,7 +327,7 @@ class RecordingSource:
     # -- internals ------------------------------------------------------------------------
 
     def _ensure_open(self) -> None:
-        if self._fh is not None:
+        if self._fh is not None or self._finished:
             return
         try:
             fh = open(self.path, encoding="ascii", errors="replace", newline="\n")  # noqa: SIM115
@@ -342,6 +341,11 @@ class RecordingSource:
         self._body_offset = fh.tell()
         self._fh = fh
         self._generation = 1
+
+    def _close_file(self) -> None:
+        fh, self._fh = self._fh, None
+        if fh is not None:
+            fh.close()
 
     def _next_chunk(self) -> tuple[float, bytes] | None:
         chunk = self._parse_next()

@@ -260,9 +260,11 @@ class SerialSource:
     def read(self, max_wait: float | None = None) -> bytes:
         """Return the bytes that arrived, waiting up to about ``max_wait`` seconds for some.
 
-        Returns as soon as any bytes are there. ``b""`` means nothing arrived: the sensor
-        is quiet, the link is being re-established, or the source was stopped; look at
-        :attr:`state` to tell which. The wait is rounded up to the port's read timeout.
+        Returns as soon as any bytes are there, and at once when the link breaks.
+        ``b""`` means nothing arrived: the sensor is quiet, the link is lost or being
+        re-established, or the source was stopped; look at :attr:`state` to tell which.
+        The wait is rounded up to the port's read timeout. Never raises for link trouble;
+        raises :class:`~bridge.errors.ConfigError` for a URL pyserial cannot handle at all.
         """
         wait = DEFAULT_WAIT_S if max_wait is None else max_wait
         deadline = self._clock() + wait
@@ -283,7 +285,7 @@ class SerialSource:
             except LINK_ERRORS as exc:
                 self.stats.read_errors += 1
                 self._lose(f"read failed: {exc}")
-                continue
+                return b""  # give the caller control at once: the link just went away
             now = self._clock()
             if data:
                 self.stats.bytes_in += len(data)
@@ -297,7 +299,7 @@ class SerialSource:
             if self._vanished():
                 self.stats.vanished += 1
                 self._lose("device vanished or its link now points elsewhere")
-                continue
+                return b""
             self._check_quiet(now)
             if now >= deadline:
                 return b""

@@ -29,6 +29,7 @@ start_now=0
 enable=1
 python=python3
 print_unit=0
+print_rule=0
 service_only=0
 
 usage() {
@@ -51,6 +52,7 @@ Installs fieldbridge into a virtual environment and sets it up as a service.
   --source DIR     the fieldbridge checkout to install (default: $source_dir).
   --python PROG    the Python used to create the venv (default: python3, 3.10 or newer).
   --print-unit     print the unit file this would install, and exit.
+  --print-rule     print the udev rule this would install, and exit.
   --dry-run        print each step instead of doing it.
   -h, --help       this text.
 EOF
@@ -73,6 +75,7 @@ while [ $# -gt 0 ]; do
         --python) [ $# -ge 2 ] || die "--python needs a program"; python=$2; shift 2 ;;
         --python=*) python=${1#*=}; shift ;;
         --print-unit) print_unit=1; shift ;;
+        --print-rule) print_rule=1; shift ;;
         --dry-run|-n) dry_run=1; shift ;;
         -h|--help) usage; exit 0 ;;
         *) usage >&2; die "unknown option: $1" ;;
@@ -177,6 +180,10 @@ render_rule() {
 
 if [ "$print_unit" = 1 ]; then
     render_unit
+    exit 0
+fi
+if [ "$print_rule" = 1 ]; then
+    render_rule
     exit 0
 fi
 
@@ -315,7 +322,8 @@ if [ "$mode" = system ]; then
     fi
 else
     note "a udev rule needs root; to install it run:"
-    note "  sudo install -m 0644 $here/$RULE_NAME $rule_path && sudo udevadm control --reload-rules"
+    note "  $0 --print-rule${usb_id:+ --usb-id $usb_id} | sudo tee $rule_path >/dev/null"
+    note "  sudo udevadm control --reload-rules"
 fi
 
 # 4. Tell the service manager and udev ----------------------------------------------

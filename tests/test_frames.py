@@ -9,10 +9,10 @@ example frame and C reference code.
 
 from __future__ import annotations
 
+import itertools
 import random
 import re
 import shutil
-import struct
 import subprocess
 from collections.abc import Iterable, Sequence
 from pathlib import Path
@@ -88,7 +88,7 @@ def feed_chunks(decoder: TextDecoder | BinaryDecoder, chunks: Iterable[bytes]) -
 
 def split_at(data: bytes, cuts: Iterable[int]) -> list[bytes]:
     points = sorted({min(max(c, 0), len(data)) for c in cuts} | {0, len(data)})
-    return [data[a:b] for a, b in zip(points, points[1:])]
+    return [data[a:b] for a, b in itertools.pairwise(points)]
 
 
 def state(decoder: TextDecoder | BinaryDecoder, frames: list[Frame]) -> tuple[object, ...]:
@@ -208,7 +208,7 @@ def test_doc_c_reference_code(tmp_path: Path) -> None:
     if cc is None:
         pytest.skip("no C compiler on this machine: the document's C code was not checked")
     text = PROTOCOL_DOC.read_text(encoding="utf-8")
-    m = re.search(r"<!-- c-reference -->\s*```c\n(.*?)```", text, re.S)
+    m = re.search(r"<!-- c-reference -->\s*```c\n(.*?)```", text, re.DOTALL)
     assert m, "docs/protocol.md lost its c-reference block"
     src = tmp_path / "ref.c"
     src.write_text(m.group(1) + C_MAIN, encoding="utf-8")
@@ -223,8 +223,10 @@ def test_doc_c_reference_code(tmp_path: Path) -> None:
     inputs = [bytes.fromhex(p) for p, _ in COBS_VECTORS] + [b"", b"\x01" * 253]
     # COBS block edges: 254 and 255 non-zero bytes, runs around 254 with zeros between
     inputs += [b"\x07" * 254, b"\x07" * 255, b"\x07" * 508 + b"\x00", b"\x00" * 5]
-    inputs += [bytes(rng.choice((0, rng.randrange(1, 256))) for _ in range(rng.randrange(0, 600)))
-               for _ in range(200)]
+    inputs += [
+        bytes(rng.choice((0, rng.randrange(1, 256))) for _ in range(rng.randrange(0, 600)))
+        for _ in range(200)
+    ]
     run = subprocess.run(
         [str(exe)],
         input="".join(b.hex() + "\n" for b in inputs),
@@ -266,7 +268,9 @@ def test_text_round_trip(
     assert dec.frames_ok == 1 and not nonzero(dec.drops)
 
 
-@given(st.integers(0, 0xFFFF), st.lists(st.integers(0, MAX_VALUE), min_size=1, max_size=MAX_CHANNELS))
+@given(
+    st.integers(0, 0xFFFF), st.lists(st.integers(0, MAX_VALUE), min_size=1, max_size=MAX_CHANNELS)
+)
 def test_binary_round_trip(seq: int, values: list[int]) -> None:
     dec = BinaryDecoder(len(values), synced=True)
     assert dec.feed(encode_binary(seq, values)) == [Frame(seq, values)]
@@ -275,7 +279,10 @@ def test_binary_round_trip(seq: int, values: list[int]) -> None:
 
 def test_named_pairs_in_any_order_come_out_in_channel_order() -> None:
     dec = TextDecoder(["a", "b", "c"], synced=True)
-    assert dec.feed(b"c=3 a=1 b=2\nb=5,c=6;a=4\n") == [Frame(None, [1, 2, 3]), Frame(None, [4, 5, 6])]
+    assert dec.feed(b"c=3 a=1 b=2\nb=5,c=6;a=4\n") == [
+        Frame(None, [1, 2, 3]),
+        Frame(None, [4, 5, 6]),
+    ]
 
 
 # --- text details -----------------------------------------------------------------------
@@ -453,7 +460,9 @@ def test_binary_bad_cobs_counted_exactly() -> None:
 def test_binary_other_channel_count_is_field_count() -> None:
     dec = BinaryDecoder(2, synced=True)
     many = encode_binary(1, [1] * MAX_CHANNELS)
-    frames = dec.feed(encode_binary(1, [1, 2, 3]) + many + encode_binary(2, [4]) + encode_binary(3, [5, 6]))
+    frames = dec.feed(
+        encode_binary(1, [1, 2, 3]) + many + encode_binary(2, [4]) + encode_binary(3, [5, 6])
+    )
     assert frames == [Frame(3, [5, 6])]
     # no good frame before seq 3, so no gap can be counted yet
     assert nonzero(dec.drops) == {"field_count": 3}
@@ -552,12 +561,14 @@ def text_piece() -> st.SearchStrategy[bytes]:
 def binary_piece() -> st.SearchStrategy[bytes]:
     good = st.builds(encode_binary, st.integers(0, 40), values_st)
     damaged = st.builds(
-        lambda p, i, x: p[:i % len(p)] + bytes([p[i % len(p)] ^ x]) + p[i % len(p) + 1 :],
+        lambda p, i, x: p[: i % len(p)] + bytes([p[i % len(p)] ^ x]) + p[i % len(p) + 1 :],
         good,
         st.integers(0, 100),
         st.integers(1, 255),
     )
-    other = st.builds(encode_binary, st.integers(0, 40), st.lists(st.integers(0, 99), max_size=4, min_size=1))
+    other = st.builds(
+        encode_binary, st.integers(0, 40), st.lists(st.integers(0, 99), max_size=4, min_size=1)
+    )
     return st.one_of(good, good, damaged, other, st.binary(max_size=40), st.just(b"\x11" * 300))
 
 
@@ -581,7 +592,11 @@ def test_text_any_chunking_gives_the_same_result(
 
 
 @settings(max_examples=150, suppress_health_check=[HealthCheck.too_slow])
-@given(st.lists(binary_piece(), max_size=30), st.lists(st.integers(0, 2000), max_size=40), st.booleans())
+@given(
+    st.lists(binary_piece(), max_size=30),
+    st.lists(st.integers(0, 2000), max_size=40),
+    st.booleans(),
+)
 def test_binary_any_chunking_gives_the_same_result(
     pieces: list[bytes], cuts: list[int], synced: bool
 ) -> None:
@@ -623,7 +638,9 @@ def test_text_frames_after_a_newline_survive_any_garbage(
 
 @given(
     st.lists(
-        st.tuples(st.binary(max_size=60).map(lambda b: b.translate(None, b"0123456789")), values_st),
+        st.tuples(
+            st.binary(max_size=60).map(lambda b: b.translate(None, b"0123456789")), values_st
+        ),
         min_size=1,
         max_size=20,
     ),
@@ -639,7 +656,11 @@ def test_text_garbage_without_digits_adds_no_frames(
 
 
 @given(
-    st.lists(st.tuples(st.binary(max_size=80), st.integers(0, 0xFFFF), values_st), min_size=1, max_size=20),
+    st.lists(
+        st.tuples(st.binary(max_size=80), st.integers(0, 0xFFFF), values_st),
+        min_size=1,
+        max_size=20,
+    ),
     st.lists(st.integers(0, 3000), max_size=30),
 )
 def test_binary_frames_after_a_zero_survive_any_garbage(
@@ -652,7 +673,11 @@ def test_binary_frames_after_a_zero_survive_any_garbage(
 
 
 @given(
-    st.lists(st.tuples(st.binary(max_size=10), st.integers(0, 0xFFFF), values_st), min_size=1, max_size=20),
+    st.lists(
+        st.tuples(st.binary(max_size=10), st.integers(0, 0xFFFF), values_st),
+        min_size=1,
+        max_size=20,
+    ),
     st.lists(st.integers(0, 3000), max_size=30),
 )
 def test_binary_short_garbage_adds_no_frames(
@@ -675,9 +700,9 @@ def test_frame_settings_defaults_and_validation() -> None:
     with pytest.raises(pydantic.ValidationError):
         FrameSettings(max_line=8)
     with pytest.raises(pydantic.ValidationError):
-        FrameSettings(format="json")  # type: ignore[arg-type]
+        FrameSettings(format="json")  # type: ignore[arg-type, call-arg]
     with pytest.raises(pydantic.ValidationError):
-        FrameSettings(kind="frequency")  # type: ignore[arg-type]
+        FrameSettings(kind="frequency")  # type: ignore[arg-type, call-arg]
     mixed = FrameSettings(kind="period", channel_kinds={"ref": "count"})
     assert mixed.kind_of("pitch") == "period" and mixed.kind_of("ref") == "count"
     assert FrameSettings(newline="crlf").newline_bytes == b"\r\n"
@@ -731,3 +756,13 @@ def test_frame_equality_and_repr() -> None:
     assert Frame(1, [2]) == Frame(1, [2]) and Frame(1, [2]) != Frame(None, [2])
     assert repr(Frame(None, [5])) == "Frame(seq=None, values=[5])"
     assert not hasattr(Frame(1, [2]), "__dict__")
+
+
+def test_decoders_take_bytearray_and_memoryview() -> None:
+    text = TextDecoder(NAMES, synced=True)
+    assert text.feed(bytearray(b"1 2\n")) + text.feed(memoryview(b"3 4\n")) == [  # type: ignore[arg-type]
+        Frame(None, [1, 2]),
+        Frame(None, [3, 4]),
+    ]
+    binary = BinaryDecoder(2, synced=True)
+    assert binary.feed(memoryview(encode_binary(9, [1, 2]))) == [Frame(9, [1, 2])]  # type: ignore[arg-type]

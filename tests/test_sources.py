@@ -391,18 +391,18 @@ def test_realtime_replay_follows_the_timestamps(tmp_path: Path, speed: float) ->
     path = tmp_path / "take.fbraw"
     _write(path)
     clock = FakeClock()
-    src = RecordingSource(path, realtime=True, speed=speed, clock=clock, wait=clock.wait)
     returned: list[tuple[float, bytes]] = []
-    while not src.finished:
-        data = src.read(0.1)
-        if data:
-            returned.append((clock.t, data))
+    with RecordingSource(path, realtime=True, speed=speed, clock=clock, wait=clock.wait) as src:
+        while not src.finished:
+            data = src.read(0.1)
+            if data:
+                returned.append((clock.t, data))
+        assert src.state is LinkState.STOPPED  # the end of the take, before close()
     start = returned[0][0]
     assert [t - start for t, _ in returned] == pytest.approx(
         [(t - 50.0) / speed for t, _ in CHUNKS], abs=1e-9)
     assert [d for _, d in returned] == [d for _, d in CHUNKS]
     assert max(clock.waits) <= 0.1 + 1e-12  # no read waits longer than asked
-    assert src.state is LinkState.STOPPED
 
 
 def test_fast_replay_does_not_wait(tmp_path: Path) -> None:
