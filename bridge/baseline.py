@@ -4,17 +4,24 @@ The practice of capacitive sensing (DOMAIN.md section 3), for a sensor where a h
 *lowers* counts (raises periods)::
 
     deviation c = N0/N - 1 (counts) or P/P0 - 1 (periods), in noise units z = c/sigma_c
+    avg = a short average of the reading (average_tau_s)
 
-    absent:   |z| small        baseline follows slowly (follow_tau_s), and never faster
-                               than max_follow_c_per_s in the hand's direction
-              z < -reverse     a reading "beyond empty": the baseline is wrong, so it
-                               recovers fast (recover_tau_s) and, if that lasts
-                               rebase_after_s, jumps to the mean of those readings (a
-                               hand was near at power-up, or the room changed)
-              z > on           not followed; after debounce_frames in a row: present
-    present:  baseline frozen; after debounce_frames in a row below off: absent
+    present:  baseline frozen; absent again after debounce_frames in a row with z < off
+    absent:   z > on              not followed; present after debounce_frames in a row
+              avg on the hand's   baseline follows avg slowly (follow_tau_s), and never
+              side of baseline    faster than max_follow_c_per_s
+              avg beyond empty    "beyond empty" means the baseline is wrong: it follows
+                                  avg fast (recover_tau_s); if avg stays more than
+                                  reverse_sigma beyond for rebase_after_s, the baseline
+                                  jumps to the mean of those readings (a hand was near
+                                  at power-up, or the room changed)
 
     on  = threshold_sigma + hysteresis_sigma      off = threshold_sigma - hysteresis_sigma
+
+Presence is judged frame by frame (the debounce does the rejecting); the follower and
+the reverse test look at the short average so that single noisy frames neither drag
+the baseline up (a fast follower on raw frames would ride the top of the noise) nor
+break a sustained reverse reading.
 
 sigma_c is the measured noise in c units (noise/base), never below ``noise_floor_c``:
 a very quiet board would otherwise set a hair-trigger threshold. Expressing the floor
@@ -55,10 +62,12 @@ class BaselineSettings(BaseModel):
     """How the hand-absent level is tracked and presence decided (see the module docstring).
 
     Defaults [practice, memory]: presence on at 8 noise units and off at 4, three frames
-    of debounce; drift followed with a 10 s time constant but at most 0.02 % of the
+    of debounce; drift followed with a 5 s time constant but at most 0.02 % of the
     reading a second toward the hand (ordinary warm-up drift is slower, a hand is not);
-    readings more than 3 noise units beyond empty recovered with 0.5 s, and a re-baseline
-    after 1 s of them.
+    readings beyond empty recovered with 0.25 s, and a re-baseline after 1 s more than 3
+    noise units beyond; a 0.1 s short average for the follower. With these the baseline
+    sits about a quarter of a noise unit above the mean empty reading (the fast side
+    wins a little), and lags a steady drift by drift rate * follow_tau_s.
     """
 
     model_config = ConfigDict(extra="forbid", allow_inf_nan=False)
@@ -66,11 +75,12 @@ class BaselineSettings(BaseModel):
     threshold_sigma: float = Field(default=6.0, gt=0.0)
     hysteresis_sigma: float = Field(default=2.0, ge=0.0)
     debounce_frames: int = Field(default=3, ge=1)
-    follow_tau_s: float = Field(default=10.0, gt=0.0)
-    recover_tau_s: float = Field(default=0.5, gt=0.0)
+    follow_tau_s: float = Field(default=5.0, gt=0.0)
+    recover_tau_s: float = Field(default=0.25, gt=0.0)
     max_follow_c_per_s: float = Field(default=2e-4, ge=0.0)
     reverse_sigma: float = Field(default=3.0, gt=0.0)
     rebase_after_s: float = Field(default=1.0, gt=0.0)
+    average_tau_s: float = Field(default=0.1, gt=0.0)
     noise_floor_c: float = Field(default=1e-5, gt=0.0)
 
     @model_validator(mode="after")
@@ -89,27 +99,29 @@ class BaselineTracker:
     """
 
     __slots__ = (
-        "settings",
-        "kind",
-        "rate_hz",
-        "noise",
-        "_count",
-        "_base",
-        "_last",
-        "_c",
-        "_present",
-        "_run",
-        "_rev_run",
-        "_rev_sum",
-        "_inv_sigma",
-        "_on",
-        "_off",
-        "_rev",
-        "_a_slow",
+        "_a_avg",
         "_a_fast",
+        "_a_slow",
+        "_avg",
+        "_base",
+        "_c",
         "_cap_c",
-        "_rebase_frames",
+        "_count",
         "_debounce",
+        "_inv_sigma",
+        "_last",
+        "_off",
+        "_on",
+        "_present",
+        "_rebase_frames",
+        "_rev",
+        "_rev_mean",
+        "_rev_run",
+        "_run",
+        "kind",
+        "noise",
+        "rate_hz",
+        "settings",
     )
 
     def __init__(
@@ -132,17 +144,19 @@ class BaselineTracker:
         # one-pole follower: per-frame fraction 1 - exp(-dt/tau)
         self._a_slow = -math.expm1(-1.0 / (rate_hz * s.follow_tau_s))
         self._a_fast = -math.expm1(-1.0 / (rate_hz * s.recover_tau_s))
+        self._a_avg = -math.expm1(-1.0 / (rate_hz * s.average_tau_s))
         self._cap_c = s.max_follow_c_per_s / rate_hz
         self._rebase_frames = max(1, round(s.rebase_after_s * rate_hz))
         self._debounce = s.debounce_frames
         self._base = float(base)
         self._set_sigma()
         self._last = float(base)
+        self._avg = float(base)
         self._c = 0.0
         self._present = False
         self._run = 0
         self._rev_run = 0
-        self._rev_sum = 0.0
+        self._rev_mean = 0.0
 
     def _set_sigma(self) -> None:
         sigma_c = max(self.noise / self._base, self.settings.noise_floor_c)
@@ -169,6 +183,9 @@ class BaselineTracker:
         if not (0.0 < raw < math.inf):
             return base
         self._last = raw
+        avg = self._avg
+        avg += (raw - avg) * self._a_avg
+        self._avg = avg
         c = base / raw - 1.0 if self._count else raw / base - 1.0
         self._c = c
         z = c * self._inv_sigma
@@ -178,47 +195,47 @@ class BaselineTracker:
                 if self._run >= self._debounce:
                     self._present = False
                     self._run = 0
+                    self._avg = raw  # forget the hand: follow from here
             else:
                 self._run = 0
             return base
         if z > self._on:
-            self._rev_run = 0
-            self._rev_sum = 0.0
             self._run += 1
             if self._run >= self._debounce:
                 self._present = True
                 self._run = 0
+            self._rev_run = 0
+            self._rev_mean = 0.0
             return base
         self._run = 0
-        if z < self._rev:
+        c_avg = base / avg - 1.0 if self._count else avg / base - 1.0
+        if c_avg * self._inv_sigma < self._rev:
             self._rev_run += 1
-            self._rev_sum += raw
+            # running mean of the reverse run: less noisy than any one reading
+            self._rev_mean += (raw - self._rev_mean) / self._rev_run
             if self._rev_run >= self._rebase_frames:
-                # the mean of the reverse run: less noisy than the last reading alone
-                mean = self._rev_sum / self._rev_run
+                mean = self._rev_mean
                 log.info("re-baseline after a sustained reverse reading: %.6g -> %.6g", base, mean)
-                self._rev_run = 0
-                self._rev_sum = 0.0
                 return self._rebase_to(mean)
-            base += (raw - base) * self._a_fast
         else:
             self._rev_run = 0
-            self._rev_sum = 0.0
-            step = (raw - base) * self._a_slow
-            if c > 0.0:  # toward the hand: capped so a hovering hand fades slowly at most
-                cap = self._cap_c * base
-                if step > cap:
-                    step = cap
-                elif step < -cap:
-                    step = -cap
-            base += step
+            self._rev_mean = 0.0
+        if c_avg < 0.0:  # beyond empty: recover fast
+            base += (avg - base) * self._a_fast
+        else:  # toward the hand: slow, and capped so a hovering hand fades slowly at most
+            step = (avg - base) * self._a_slow
+            cap = self._cap_c * base
+            base += step if -cap < step < cap else (cap if step > 0.0 else -cap)
         self._base = base
         return base
 
     def _rebase_to(self, value: float) -> float:
         self._base = value
+        self._avg = value
         self._set_sigma()
         self._c = 0.0
+        self._rev_run = 0
+        self._rev_mean = 0.0
         return value
 
     def rebase(self, value: float | None = None) -> None:
@@ -229,8 +246,6 @@ class BaselineTracker:
         self._rebase_to(float(target))
         self._present = False
         self._run = 0
-        self._rev_run = 0
-        self._rev_sum = 0.0
 
 
 class ReferenceCorrector:

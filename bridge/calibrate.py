@@ -44,6 +44,7 @@ Models of c against position (``ChannelCalibration.model``):
 
 from __future__ import annotations
 
+import itertools
 import logging
 import math
 from bisect import bisect_right
@@ -222,6 +223,8 @@ def pchip_slopes(x: Sequence[float], y: Sequence[float]) -> list[float]:
     a straight line. These are the rules of scipy.interpolate.PchipInterpolator, which
     the tests use as the reference.
     """
+    x = [float(v) for v in x]  # plain floats: an overflow gives inf, never a warning
+    y = [float(v) for v in y]
     n = len(x)
     if n < 2:
         raise ValueError("need at least two knots")
@@ -257,9 +260,11 @@ class Pchip:
     bisection and a cubic in Horner form, so a call costs well under a microsecond.
     """
 
-    __slots__ = ("xs", "ys", "d", "c2", "c3")
+    __slots__ = ("c2", "c3", "d", "xs", "ys")
 
-    def __init__(self, x: Sequence[float], y: Sequence[float], slopes: Sequence[float] | None = None):
+    def __init__(
+        self, x: Sequence[float], y: Sequence[float], slopes: Sequence[float] | None = None
+    ):
         self.xs = [float(v) for v in x]
         self.ys = [float(v) for v in y]
         if any(b <= a for a, b in zip(self.xs, self.xs[1:])):
@@ -308,7 +313,7 @@ class Pchip:
 class _PowerCurve:
     """position = 1 + s - (a/c)**(1/alpha), the inverse of c = a/(1 - position + s)**alpha."""
 
-    __slots__ = ("a", "s", "alpha", "inv_alpha", "c0", "c1")
+    __slots__ = ("a", "alpha", "c0", "c1", "inv_alpha", "s")
 
     def __init__(self, a: float, s: float, alpha: float):
         self.a, self.s, self.alpha, self.inv_alpha = a, s, alpha, 1.0 / alpha
@@ -334,13 +339,26 @@ class _PowerCurve:
 
 
 class _KnotCurve:
-    """position as a piecewise cubic of x, with x = log(c + shift) or x = c (shift None)."""
+    """position as a piecewise cubic of x, with x = log(c + shift) or x = c (shift None).
 
-    __slots__ = ("curve", "shift", "v0")
+    The segments are unpacked into tuples so that a call is one bisection, at most one
+    logarithm and a cubic in Horner form, with no further method calls.
+    """
+
+    __slots__ = ("_add", "_log", "_segs", "_starts", "_v0", "_v1", "curve", "shift")
 
     def __init__(self, curve: Pchip, shift: float | None):
         self.curve, self.shift = curve, shift
-        self.v0 = math.exp(curve.xs[0]) if shift is not None else curve.xs[0]
+        xs = curve.xs
+        self._log = shift is not None
+        self._add = shift if shift is not None else 0.0
+        # c + shift at the first and last knot: below -> position 0, above -> 1
+        self._v0 = math.exp(xs[0]) if self._log else xs[0]
+        self._v1 = math.exp(xs[-1]) if self._log else xs[-1]
+        self._starts = xs[:-1]
+        self._segs = [
+            (xs[k], curve.ys[k], curve.d[k], curve.c2[k], curve.c3[k]) for k in range(len(xs) - 1)
+        ]
 
     def __eq__(self, other: object) -> bool:
         if not isinstance(other, _KnotCurve):
@@ -349,19 +367,18 @@ class _KnotCurve:
         return (self.shift, a.xs, a.ys, a.d) == (other.shift, b.xs, b.ys, b.d)
 
     def position(self, c: float) -> float:
-        shift = self.shift
-        if shift is None:
-            if not c > self.v0:
-                return 0.0
-            p = self.curve(c)
-        else:
-            v = c + shift
-            if not v > self.v0:
-                return 0.0
-            p = self.curve(math.log(v)) if v < math.inf else 1.0
+        v = c + self._add
+        if not v > self._v0:  # also catches NaN
+            return 0.0
+        if v >= self._v1:
+            return 1.0
+        x = math.log(v) if self._log else v
+        x0, y0, d, c2, c3 = self._segs[bisect_right(self._starts, x) - 1]
+        t = x - x0
+        p = y0 + t * (d + t * (c2 + t * c3))
         if p < 0.0:
             return 0.0
-        return p if p < 1.0 else 1.0
+        return 1.0 if p > 1.0 else p  # noqa: FURB136 (min() costs a call per frame)
 
     def c_at(self, position: float) -> float:
         x = self.curve.inverse(_clamp01(position))
@@ -371,7 +388,7 @@ class _KnotCurve:
 def _clamp01(p: float) -> float:
     if p >= 1.0:
         return 1.0
-    return p if p > 0.0 else 0.0  # NaN -> 0
+    return max(0.0, p)  # NaN -> 0
 
 
 # ----------------------------------------------------------------------- saved model
@@ -410,7 +427,7 @@ class ChannelCalibration(BaseModel):
     points in log(c + shift)); linear needs none. ``fit_error`` is the largest miss of
     the curve at a captured point, as a fraction of the range.
 
-    ``position(c)`` and ``c_at(position)`` are exact inverses on 0..1. For the hot path
+    ``position(c)`` and ``c_at(position)`` are inverses of each other on 0..1. For the hot path
     take ``cal.curve`` once and call ``curve.position`` on it.
     """
 
@@ -431,7 +448,9 @@ class ChannelCalibration(BaseModel):
     @model_validator(mode="after")
     def _build(self) -> ChannelCalibration:
         pts = self.points
-        for a, b in zip(pts, pts[1:]):
+        if pts[0].position != 0.0 or pts[-1].position != 1.0:
+            raise ValueError("points must start at position 0 (far) and end at 1 (near)")
+        for a, b in itertools.pairwise(pts):
             if not (b.position > a.position and b.c > a.c):
                 raise ValueError(
                     "points must rise in both position and c, far first "
@@ -440,7 +459,10 @@ class ChannelCalibration(BaseModel):
         missing = [k for k in _REQUIRED_PARAMS[self.model] if k not in self.params]
         if missing:
             raise ValueError(f"model {self.model!r} needs params {', '.join(missing)}")
-        self._curve = _make_curve(self.model, self.params, pts)
+        try:
+            self._curve = _make_curve(self.model, self.params, pts)
+        except ArithmeticError:  # overflow, or underflow to a division by zero
+            raise ValueError(f"params {self.params} overflow: not a usable curve") from None
         return self
 
     @property
@@ -563,9 +585,11 @@ def fit_calibration(
         )
     _check_monotone(points)
 
+    named = [("far", far_c), ("near", near_c)]
+    named += [(_where(cap), cap) for cap in between]
     notes = [
-        f"{name} hold drifted by {cap.stats.drift_sigma:.1f} noise units: was the hand still?"
-        for name, cap in (("far", far_c), ("near", near_c))
+        f"the {name} hold drifted by {cap.stats.drift_sigma:.1f} noise units: was the hand still?"
+        for name, cap in named
         if not cap.stats.stable
     ]
     chosen, params, fit_error, more = _fit(points, noise_c, model)
@@ -589,6 +613,11 @@ def _place_points(
 ) -> list[CalPoint]:
     def point(cap: Capture, position: float) -> CalPoint:
         mean = cap.stats.mean
+        if not (mean > 0.0 and math.isfinite(mean)):
+            raise CalibrationError(
+                f"the {_where(cap)} hold averages {mean:g}: the oscillator gave no usable "
+                "readings; check its wiring and the antenna connection"
+            )
         c = c_from_raw(mean, base, kind)
         # scatter of the hold carried into c units: |dc/draw| * std
         c_std = cap.stats.std * (base / mean**2 if kind == "count" else 1.0 / base)
@@ -615,17 +644,25 @@ def _place_points(
             out.append(point(cap, pos))
     else:
         for cap in between:
-            pos = cap.position
-            if pos is None or not 0.0 < pos < 1.0:
+            given = cap.position
+            if given is None or not 0.0 < given < 1.0:
                 raise CalibrationError(
-                    f"intermediate capture needs a position strictly between 0 and 1, got {pos}"
+                    f"intermediate capture needs a position strictly between 0 and 1, got {given}"
                 )
-            out.append(point(cap, pos))
+            out.append(point(cap, given))
     out.sort(key=lambda p: p.position)
-    for a, b in zip(out, out[1:]):
+    for a, b in itertools.pairwise(out):
         if b.position == a.position:
             raise CalibrationError(f"two captures share position {a.position:g}: drop one")
     return out
+
+
+def _where(cap: Capture) -> str:
+    if cap.distance_m is not None:
+        return f"{cap.distance_m * 100:.1f} cm"
+    if cap.position is not None:
+        return f"position {cap.position:.2f}"
+    return "far or near"
 
 
 def _describe(p: CalPoint) -> str:
@@ -680,7 +717,10 @@ def _fit(
             )
         if len(points) == 2:
             params, err = _fit_power_two(float(c[0]), float(c[1]))
-            notes.append("two points only: inverse-distance law (alpha 1) assumed")
+            notes.append(
+                "only far and near were captured, so an inverse-distance law (alpha 1) is "
+                "assumed: capture a middle mark to fit the law of this antenna"
+            )
         else:
             params, err = _fit_power_many(p, c)
             if not params:
@@ -769,7 +809,7 @@ def _fit_power_many(p: np.ndarray, c: np.ndarray) -> tuple[dict[str, float], flo
     try:
         a = math.exp(float(log_a[0]))
         curve = _PowerCurve(a, s, al)
-    except OverflowError:  # the points ask for an exponential, not a power law
+    except ArithmeticError:  # the points ask for an exponential, not a power law
         return {}, math.inf
     if not (0.0 < al <= ALPHA_MAX and 0.0 < curve.c0 < curve.c1 < math.inf):
         return {}, math.inf
@@ -826,12 +866,16 @@ class ResolutionReport(BaseModel):
     def lines(self) -> list[str]:
         unit = "count" if self.kind == "count" else "tick"
         out = [
-            f"Resolution ({self.kind} board, {self.window_s * 1000:.2f} ms window, "
-            f"{self.pitch_span_semitones:g} semitones across the range)",
+            (
+                f"Resolution ({self.kind} board, {self.window_s * 1000:.2f} ms window, "
+                f"{self.pitch_span_semitones:g} semitones across the range)"
+            ),
             f"  range: the oscillator moves {self.total_change_pct:.3g} % from far to near",
             f"  noise (hand absent): {self.noise_raw:.3g} {unit}s RMS",
-            f"  cents per {unit}: near {self.cents_per_count_near:.3g}, "
-            f"middle {self.cents_per_count_middle:.3g}, far {self.cents_per_count_far:.3g}",
+            (
+                f"  cents per {unit}: near {self.cents_per_count_near:.3g}, "
+                f"middle {self.cents_per_count_middle:.3g}, far {self.cents_per_count_far:.3g}"
+            ),
             f"  pitch noise at the middle: {self.pitch_noise_cents:.3g} cents RMS unsmoothed",
         ]
         if self.pitch_noise_smoothed_cents is not None:

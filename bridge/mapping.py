@@ -98,10 +98,11 @@ SCALES: dict[str, tuple[int, ...]] = {
 assert set(SCALES) == set(get_args(ScaleName)), "SCALES and ScaleName must list the same names"
 
 
-def _clamp01(p: float) -> float:
-    """Position to [0, 1]; NaN and -inf go to 0, +inf to 1."""
+def _clamp01(position: float) -> float:
+    """Position as a plain float in [0, 1]; NaN and -inf go to 0, +inf to 1."""
+    p = float(position)  # numpy scalars become plain floats here
     if p >= 0.0:
-        return p if p <= 1.0 else 1.0
+        return min(p, 1.0)
     return 0.0  # negative, -inf or NaN (every comparison with NaN is false)
 
 
@@ -120,14 +121,14 @@ class PitchSettings(BaseModel):
 
     model_config = ConfigDict(extra="forbid")
 
-    lowest_note: float = Field(48.0, ge=0.0, le=127.0)
-    span_semitones: float = Field(36.0, gt=0.0, le=96.0)
-    higher_when_near: bool = Field(True, description="pitch rises as the hand nears the antenna")
+    lowest_note: float = Field(default=48.0, ge=0.0, le=127.0)
+    span_semitones: float = Field(default=36.0, gt=0.0, le=96.0)
+    higher_when_near: bool = Field(default=True, description="pitch rises as the hand nears the antenna")
     scale: ScaleName = "chromatic"
-    root: str = Field("C", description="pitch class the scale is built on: C, C#, Db, ... B")
-    pull: float = Field(0.0, ge=0.0, le=1.0, description="0 = free glide, 1 = fully on the scale")
-    hysteresis_cents: float = Field(15.0, ge=0.0, le=50.0)
-    a4_hz: float = Field(440.0, ge=200.0, le=1000.0, description="tuning of A4 (note 69)")
+    root: str = Field(default="C", description="pitch class the scale is built on: C, C#, Db, ... B")
+    pull: float = Field(default=0.0, ge=0.0, le=1.0, description="0 = free glide, 1 = fully on the scale")
+    hysteresis_cents: float = Field(default=15.0, ge=0.0, le=50.0)
+    a4_hz: float = Field(default=440.0, ge=200.0, le=1000.0, description="tuning of A4 (note 69)")
 
     @field_validator("root")
     @classmethod
@@ -155,8 +156,19 @@ class PitchMap:
     """
 
     __slots__ = (
-        "settings", "low", "high", "_span", "_rising", "_pull", "_hyst", "_a4",
-        "_root", "_degrees", "_target", "_switch_down", "_switch_up",
+        "_a4",
+        "_degrees",
+        "_hyst",
+        "_pull",
+        "_rising",
+        "_root",
+        "_span",
+        "_switch_down",
+        "_switch_up",
+        "_target",
+        "high",
+        "low",
+        "settings",
     )
 
     def __init__(self, settings: PitchSettings) -> None:
@@ -245,18 +257,27 @@ class LevelSettings(BaseModel):
 
     model_config = ConfigDict(extra="forbid")
 
-    floor_db: float = Field(-60.0, ge=-120.0, le=-6.0, description="level just above silence")
-    ceiling: float = Field(1.0, ge=0.0, le=1.0, description="maximum linear gain")
+    floor_db: float = Field(default=-60.0, ge=-120.0, le=-6.0, description="level just above silence")
+    ceiling: float = Field(default=1.0, ge=0.0, le=1.0, description="maximum linear gain")
     taper: Literal["decibel", "linear"] = "decibel"
-    louder_when_near: bool = Field(False, description="False: the hand nearer is quieter")
-    mute_zone: float = Field(0.02, ge=0.0, le=0.5, description="silent part of the travel")
+    louder_when_near: bool = Field(default=False, description="False: the hand nearer is quieter")
+    mute_zone: float = Field(default=0.02, ge=0.0, le=0.5, description="silent part of the travel")
 
 
 class LevelMap:
     """Position -> linear gain in [0, ceiling]; 0 inside the mute zone (or below the floor)."""
 
-    __slots__ = ("settings", "_floor", "_ceiling", "_loud_near", "_zone", "_scale", "_db_taper",
-                 "_floor_gain", "_k")
+    __slots__ = (
+        "_ceiling",
+        "_db_taper",
+        "_floor",
+        "_floor_gain",
+        "_k",
+        "_loud_near",
+        "_scale",
+        "_zone",
+        "settings",
+    )
 
     # 10**(dB/20) written as exp(dB * ln(10)/20), which is cheaper to evaluate.
     _LN10_OVER_20 = math.log(10.0) / 20.0
@@ -280,8 +301,7 @@ class LevelMap:
         if p <= self._zone:
             return 0.0
         q = (p - self._zone) * self._scale  # 0 at the edge of the mute zone, 1 at the loud end
-        if q > 1.0:
-            q = 1.0
+        q = min(q, 1.0)
         if self._db_taper:
             return self._ceiling * math.exp(self._floor * (1.0 - q) * self._k)
         if q < self._floor_gain:

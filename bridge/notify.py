@@ -42,7 +42,10 @@ import sys
 import threading
 import time
 from collections.abc import Callable, Mapping
-from typing import TextIO
+from typing import TYPE_CHECKING, TextIO
+
+if TYPE_CHECKING:
+    from typing_extensions import Self
 
 logger = logging.getLogger(__name__)
 
@@ -162,11 +165,13 @@ class Notifier:
         try:
             with self._lock:
                 if self._sock is None:
-                    sock = socket.socket(socket.AF_UNIX, socket.SOCK_DGRAM | socket.SOCK_CLOEXEC)
+                    # Not inherited by child processes (PEP 446: sockets are created
+                    # non-inheritable), so a helper we start cannot notify as us.
+                    sock = socket.socket(socket.AF_UNIX, socket.SOCK_DGRAM)
                     sock.settimeout(_SEND_TIMEOUT_S)
                     self._sock = sock
                 self._sock.sendto(payload, self._address)
-        except OSError as exc:  # includes socket.timeout; the manager may be gone
+        except (OSError, ValueError) as exc:  # incl. timeouts; the manager may be gone
             logger.debug("service notification %r not sent: %s", lines[:1], exc)
             return False
         return True
@@ -219,7 +224,7 @@ class Notifier:
                 self._sock.close()
                 self._sock = None
 
-    def __enter__(self) -> Notifier:
+    def __enter__(self) -> Self:
         return self
 
     def __exit__(self, *exc: object) -> None:
@@ -343,6 +348,13 @@ def running_under_journal(
 
 
 _HANDLER_MARK = "_fieldbridge_handler"
+_LEVEL_NAMES = {
+    "debug": logging.DEBUG,
+    "info": logging.INFO,
+    "warning": logging.WARNING,
+    "error": logging.ERROR,
+    "critical": logging.CRITICAL,
+}
 
 
 def configure_logging(
@@ -364,10 +376,12 @@ def configure_logging(
     Returns the installed handler.
     """
     if isinstance(level, str):
-        resolved = logging.getLevelName(level.upper())
-        if not isinstance(resolved, int):
-            raise ValueError(f"unknown log level {level!r}; use debug, info, warning or error")
-        level = resolved
+        try:
+            level = _LEVEL_NAMES[level.lower()]
+        except KeyError:
+            raise ValueError(
+                f"unknown log level {level!r}; use debug, info, warning or error"
+            ) from None
     stream = sys.stderr if stream is None else stream
     if journald is None:
         journald = running_under_journal(stream)
@@ -377,9 +391,7 @@ def configure_logging(
     if journald:
         handler.setFormatter(_JournalFormatter("%(name)s: %(message)s"))
     else:
-        handler.setFormatter(
-            logging.Formatter("%(asctime)s %(levelname)-7s %(name)s: %(message)s")
-        )
+        handler.setFormatter(logging.Formatter("%(asctime)s %(levelname)-7s %(name)s: %(message)s"))
     handler.addFilter(RepeatFilter(repeat_interval_s))
 
     root = logging.getLogger()

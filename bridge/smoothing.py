@@ -54,8 +54,16 @@ class OneEuro:
     """
 
     __slots__ = (
-        "rate_hz", "mincutoff", "beta", "dcutoff",
-        "_te", "_k_d_fixed", "_x_hat", "_dx_hat", "_t_prev", "_started",
+        "_dx_hat",
+        "_k_d_fixed",
+        "_started",
+        "_t_prev",
+        "_te",
+        "_x_hat",
+        "beta",
+        "dcutoff",
+        "mincutoff",
+        "rate_hz",
     )
 
     def __init__(
@@ -158,9 +166,9 @@ class SmoothingSettings(BaseModel):
     model_config = ConfigDict(extra="forbid")
 
     enabled: bool = True
-    min_cutoff_hz: float = Field(0.5, gt=0.0, le=100.0, description="cutoff when still")
-    beta: float = Field(5.0, ge=0.0, le=10_000.0, description="cutoff rise per unit/s of speed")
-    derivative_cutoff_hz: float = Field(3.0, gt=0.0, le=100.0, description="speed smoothing")
+    min_cutoff_hz: float = Field(default=0.5, gt=0.0, le=100.0, description="cutoff when still")
+    beta: float = Field(default=5.0, ge=0.0, le=10_000.0, description="cutoff rise per unit/s of speed")
+    derivative_cutoff_hz: float = Field(default=3.0, gt=0.0, le=100.0, description="speed smoothing")
 
     def make(self, rate_hz: float) -> OneEuro:
         """A fresh filter for one channel at the nominal frame rate `rate_hz`."""

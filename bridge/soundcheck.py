@@ -125,3 +125,74 @@ def holds_summary(holds: Sequence[Hold], names: Sequence[str]) -> Mapping[str, d
     return {
         h.label: {n: float(np.mean(h.values[:, i])) for i, n in enumerate(names)} for h in holds
     }
+
+
+# ------------------------------------------------------------------ the guided capture
+
+
+@dataclass
+class Step:
+    """One hold the performer is asked for. ``distance_m`` is None for the hand-absent hold."""
+
+    label: str
+    prompt: str
+    distance_m: float | None = None
+
+
+def default_steps(d_far: float, d_near: float, marks: Sequence[float] = ()) -> list[Step]:
+    steps = [
+        Step(AWAY, "Step away: both hands well away from both antennas, nobody near."),
+        Step(FAR, f"Both hands at the FAR playing position (about {d_far * 100:.0f} cm).", d_far),
+        Step(NEAR, f"Both hands at the NEAREST playing position (about {d_near * 100:.0f} cm).",
+             d_near),
+    ]
+    for d in marks:
+        steps.append(Step(f"mark-{d:.2f}", f"Both hands at the mark {d * 100:.0f} cm away.", d))
+    return steps
+
+
+@dataclass
+class HoldVerdict:
+    """Whether a hold can be used, and why not."""
+
+    ok: bool
+    problems: list[str]
+
+
+def judge_hold(
+    values: np.ndarray,
+    channels: Sequence[ChannelSettings],
+    *,
+    rate_hz: float,
+    max_drift_sigma: float = 4.0,
+) -> HoldVerdict:
+    """Reject a hold whose readings drifted (a hand moving, a board warming up)."""
+    problems = []
+    if values.shape[0] < 10:
+        return HoldVerdict(False, ["too few frames arrived: is the board sending?"])
+    for i, ch in enumerate(channels):
+        if ch.role not in ("pitch", "volume"):
+            continue
+        st = hold_stats(values[:, i], rate_hz, max_drift_sigma=max_drift_sigma)
+        if not st.stable:
+            problems.append(
+                f"{ch.name}: the reading moved by {st.drift_sigma:.1f} noise units during the "
+                "hold; keep the hand still and try again"
+            )
+    return HoldVerdict(not problems, problems)
+
+
+def paced_performance(
+    steps: Sequence[Step], *, move_s: float, settle_s: float, hold_s: float, seed: int = 0
+) -> object:
+    """A simulated performer who follows a paced soundcheck exactly (for --simulate)."""
+    from . import sim
+
+    p = sim.Performance(seed, tremor_m=0.0003)
+    for st in steps:
+        if st.distance_m is None:
+            p.leave(move_s).silence(settle_s + hold_s, label=st.label)
+        else:
+            d = st.distance_m
+            p.glide(move_s, pitch=d, volume=d).hold(settle_s + hold_s, label=st.label)
+    return p.leave(2.0)

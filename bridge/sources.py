@@ -6,7 +6,7 @@ Cheat sheet::
                        on_state=print)          # StateChange(old, new, generation, reason, t)
     gen = 0
     while running:
-        data = src.read(0.05)                   # b"" = nothing yet (quiet), never an unplug
+        data = src.read(0.05)                   # b"" = nothing arrived; src.state says why
         if src.generation != gen:               # the port was (re)opened: the board may
             gen = src.generation                # have reset, so resynchronise the decoder
             decoder.reset()
@@ -235,6 +235,7 @@ class SerialSource:
         self._next_attempt = 0.0
         self._last_activity = 0.0
         self._opened_target: str | None = None
+        self._held_error: BaseException | None = None
 
     # -- public surface -------------------------------------------------------------------
 
@@ -278,7 +279,11 @@ class SerialSource:
                     return b""
                 self._stop.wait(max(0.0, min(deadline, self._next_attempt) - now))
                 continue
+            error = self._held_error
             try:
+                if error is not None:  # bytes before the break went out with the last read
+                    self._held_error = None
+                    raise error
                 data = port.read(1)
                 if data:
                     data = self._drain(port, data)
@@ -341,11 +346,15 @@ class SerialSource:
     def _drain(self, port: serial.SerialBase, data: bytes) -> bytes:
         # One byte has arrived; take whatever else is already buffered without waiting.
         # (For socket:// pyserial reports at most 1 waiting byte, so this loops per byte.)
-        while len(data) < MAX_CHUNK:
-            waiting: int = port.in_waiting  # type: ignore[attr-defined]
-            if not waiting:
-                break
-            data += port.read(min(waiting, MAX_CHUNK - len(data)))
+        # A break found here is held for the next read, so the bytes before it still count.
+        try:
+            while len(data) < MAX_CHUNK:
+                waiting: int = port.in_waiting  # type: ignore[attr-defined]
+                if not waiting:
+                    break
+                data += port.read(min(waiting, MAX_CHUNK - len(data)))
+        except LINK_ERRORS as exc:
+            self._held_error = exc
         return data
 
     def _target(self) -> str:
@@ -438,6 +447,7 @@ class SerialSource:
         self._set_state(LinkState.LOST, f"{reason}; reopening in {delay:.2f} s")
 
     def _release(self) -> None:
+        self._held_error = None
         with self._port_lock:
             port, self._port = self._port, None
         if port is not None:
@@ -632,7 +642,7 @@ class PtyBoard(_PacedBoard):
         log.debug("board plugged in at %s", self.path)
 
     def _unplug(self) -> None:
-        if self.link_path is not None:  # the link goes first, as udev removes it on unplug
+        if self.link_path is not None:  # the system removes a by-id link on unplug
             with contextlib.suppress(FileNotFoundError):
                 os.unlink(self.link_path)
         for fd in (self._master, self._slave):

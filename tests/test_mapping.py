@@ -2,8 +2,10 @@
 
 from __future__ import annotations
 
+import itertools
 import math
 
+import numpy as np
 import pytest
 from hypothesis import assume, given, settings
 from hypothesis import strategies as st
@@ -16,6 +18,7 @@ from bridge.mapping import (
     LevelSettings,
     PitchMap,
     PitchSettings,
+    ScaleName,
     cc_to_db,
     cents,
     db_to_gain,
@@ -111,6 +114,14 @@ def test_out_of_range_positions_clamp(p: float, expected: float) -> None:
     assert PitchMap(PitchSettings()).note(p) == expected
 
 
+def test_numpy_positions_give_plain_floats() -> None:
+    pm = PitchMap(PitchSettings(pull=0.5, scale="major"))
+    lm = LevelMap(LevelSettings())
+    for p in (np.float32(0.3), np.float64(0.7), np.float64(np.nan)):
+        assert type(pm.note(p)) is float
+        assert type(lm.level(p)) is float
+
+
 def test_full_pull_snaps_to_the_scale() -> None:
     pm = PitchMap(PitchSettings(scale="major", root="C", pull=1.0))
     outs = {pm.note(i / 360.0) for i in range(361)}
@@ -168,7 +179,7 @@ def test_unknown_root_and_typos_are_named() -> None:
     with pytest.raises(ValidationError, match="root"):
         PitchSettings(root="H")
     with pytest.raises(ValidationError):
-        PitchSettings(scale="lydian-ish")  # type: ignore[arg-type]
+        PitchSettings(scale="lydian-ish")  # type: ignore[arg-type, call-arg]
     with pytest.raises(ValidationError):
         PitchSettings(pul=0.5)  # type: ignore[call-arg]
     with pytest.raises(ValidationError):
@@ -187,7 +198,7 @@ def test_unknown_root_and_typos_are_named() -> None:
     hyst=st.floats(0.0, 50.0),
 )
 def test_note_always_finite_and_in_range(
-    p: float, lowest: float, span: float, pull: float, scale: str, root: str, rising: bool,
+    p: float, lowest: float, span: float, pull: float, scale: ScaleName, root: str, rising: bool,
     hyst: float,
 ) -> None:
     s = PitchSettings(lowest_note=lowest, span_semitones=span, pull=pull, scale=scale,
@@ -210,7 +221,7 @@ def test_note_always_finite_and_in_range(
     span=st.floats(1.0, 48.0),
 )
 def test_monotone_sweep_gives_monotone_notes(
-    positions: list[float], pull: float, scale: str, root: str, hyst: float, span: float
+    positions: list[float], pull: float, scale: ScaleName, root: str, hyst: float, span: float
 ) -> None:
     # For a sweep in one direction the target degree only moves the same way, so the
     # note never turns back, whatever the pull (0 = linear, 1 = a staircase).
@@ -219,16 +230,18 @@ def test_monotone_sweep_gives_monotone_notes(
     up = sorted(positions)
     pm = PitchMap(s)
     notes = [pm.note(p) for p in up]
-    assert all(b >= a for a, b in zip(notes, notes[1:]))
+    assert all(b >= a for a, b in itertools.pairwise(notes))
     down = sorted(positions, reverse=True)
     pm = PitchMap(s)
     notes = [pm.note(p) for p in down]
-    assert all(b <= a for a, b in zip(notes, notes[1:]))
+    assert all(b <= a for a, b in itertools.pairwise(notes))
 
 
 @settings(max_examples=100, deadline=None)
 @given(a=unit, b=unit, pull=st.floats(0.0, 0.99), scale=scale_names)
-def test_strictly_increasing_with_partial_pull(a: float, b: float, pull: float, scale: str) -> None:
+def test_strictly_increasing_with_partial_pull(
+    a: float, b: float, pull: float, scale: ScaleName
+) -> None:
     # With pull < 1 the glide term (1 - pull) * linear keeps every step upward visible.
     assume(b - a > 1e-6)
     pm = PitchMap(PitchSettings(pull=pull, scale=scale))
@@ -297,7 +310,7 @@ def test_level_always_in_range(
 def test_level_monotone_in_position(ps: list[float]) -> None:
     lm = LevelMap(LevelSettings(louder_when_near=True))
     gains = [lm.level(p) for p in sorted(ps)]
-    assert all(b >= a for a, b in zip(gains, gains[1:]))
+    assert all(b >= a for a, b in itertools.pairwise(gains))
 
 
 # --- controller laws ---------------------------------------------------------------------

@@ -186,7 +186,7 @@ def test_settings_validation() -> None:
     with pytest.raises(ValidationError):
         OscSettings(voice_fields=["hz", "hz"])
     with pytest.raises(ValidationError):
-        OscSettings(voice_fields=["pitch"])  # type: ignore[list-item]
+        OscSettings(voice_fields=["pitch"])  # type: ignore[list-item, call-arg]
     with pytest.raises(ValidationError):
         OscSettings(destination=["127.0.0.1:9"])  # type: ignore[call-arg]
     assert OscSettings(prefix="/stage/left/").prefix == "/stage/left"
@@ -373,6 +373,13 @@ def test_layout_follows_new_names(receiver: socket.socket) -> None:
         assert sink.addresses() == got
     assert got == ["/fieldbridge/voice/solo/hz", "/fieldbridge/voice/solo/note",
                    "/fieldbridge/voice/solo/level"]
+
+
+def test_localhost_by_name_reaches_an_ipv4_receiver(receiver: socket.socket) -> None:
+    port = receiver.getsockname()[1]
+    with OscSink(OscSettings(destinations=[f"localhost:{port}"])) as sink:
+        sink.send(two_voice_reading())
+        assert messages(receiver.recv(65536))[0].address == "/fieldbridge/voice/lead/hz"
 
 
 def test_ipv6_destination() -> None:

@@ -9,6 +9,7 @@ from __future__ import annotations
 
 import json
 import os
+import socket
 import threading
 import time
 from collections.abc import Callable
@@ -27,6 +28,7 @@ from bridge.recording import (
 )
 from bridge.sources import (
     Backoff,
+    ByteSource,
     LinkState,
     PtyBoard,
     SerialSource,
@@ -124,7 +126,8 @@ def test_unknown_url_scheme_is_a_config_error_not_a_retry() -> None:
 
 def test_loop_url_echoes_written_bytes() -> None:
     with SerialSource(SourceSettings(url="loop://")) as src:
-        assert src.read(0.01) == b""  # opens the port; nothing written yet
+        source: ByteSource = src
+        assert source.read(0.01) == b""  # opens the port; nothing written yet
         assert src.generation == 1 and src.port is not None
         frame = b"5012 4987 5101\n"
         src.port.write(frame)
@@ -252,6 +255,19 @@ def test_socket_board_stopped_and_restarted_on_same_port() -> None:
     assert [e.new for e in events][:4] == [
         LinkState.STREAMING, LinkState.LOST, LinkState.CONNECTING, LinkState.STREAMING
     ]
+
+
+def test_bytes_sent_just_before_a_disconnect_are_delivered() -> None:
+    with socket.create_server(("127.0.0.1", 0)) as server:
+        url = f"socket://127.0.0.1:{server.getsockname()[1]}"
+        with SerialSource(fast(url)) as src:
+            assert src.read(0.01) == b""  # connected (the kernel accepted it), no data yet
+            conn, _ = server.accept()
+            conn.sendall(b"5012 4987\n")
+            conn.close()  # the board goes away right after its last frame
+            assert read_until(src, b"\n") == b"5012 4987\n"
+            pump(src, lambda: src.state is LinkState.LOST)
+            assert src.stats.read_errors == 1
 
 
 # -- back-off and interruption ----------------------------------------------------------------
@@ -419,7 +435,8 @@ def test_looped_replay_counts_generations(tmp_path: Path) -> None:
     path = tmp_path / "take.fbraw"
     _write(path)
     with RecordingSource(path, realtime=False, loop=True) as src:
-        out = [src.read() for _ in range(2 * len(CHUNKS) + 1)]
+        source: ByteSource = src  # a recording stands in wherever a serial link does
+        out = [source.read() for _ in range(2 * len(CHUNKS) + 1)]
         assert src.generation == 3 and not src.finished
     assert out == [d for _, d in CHUNKS] * 2 + [CHUNKS[0][1]]
 

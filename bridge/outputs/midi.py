@@ -161,6 +161,9 @@ class MidiSettings(BaseModel):
         default_factory=list,
         description="existing ports to send to; ALSA's trailing 'client:port' numbers optional",
     )
+    close_wait_s: float = Field(
+        0.1, ge=0.0, le=5.0, description="JACK: time for the last note-offs to leave before closing"
+    )
 
     # -- what is played --
     mode: Literal["slide", "steps", "mpe"] = "slide"
@@ -187,6 +190,11 @@ class MidiSettings(BaseModel):
 
     # -- traffic --
     max_rate_hz: float = Field(500.0, gt=0.0, description="per continuous stream (bend, level, timbre)")
+    setup_refresh_s: float | None = Field(
+        5.0,
+        gt=0.0,
+        description="repeat the bend range (RPN 0) before a new note when this long since the last",
+    )
     din_link: bool = Field(False, description="share the ~1042 messages/s of a 31,250-baud DIN link")
     din_reserve: float = Field(0.25, ge=0.0, lt=1.0, description="part of the DIN budget kept for notes")
 
@@ -323,6 +331,7 @@ class MidiVoice:
         self.note_channel = self.channels[0]  # channel of the sounding (or last) note
         self._next = 0  # round robin position among member channels
         self._t0: float | None = None  # ramp start
+        self._setup_t: float | None = None  # when the bend range was last sent with a note
 
     # -- lifecycle --------------------------------------------------------------------
 
@@ -347,6 +356,7 @@ class MidiVoice:
         self._timbre.forget()
         self.started = True
         self._t0 = None
+        self._setup_t = None
         return out
 
     def silence(self) -> list[bytes]:
@@ -476,6 +486,14 @@ class MidiVoice:
                 self._level.forget()
                 self._timbre.forget()
         self.note_channel = ch
+        refresh = self.s.setup_refresh_s
+        if old is None and refresh is not None:
+            # A synth connected after start (a patchbay, a restarted synth, a JACK
+            # connection that took effect a cycle late) missed the set-up; repeat the
+            # bend range before the first note and then at most every `refresh` seconds.
+            if self._setup_t is None or not 0.0 <= t - self._setup_t < refresh:
+                out += rpn(ch, "bend_range", int(self.range), 0)
+                self._setup_t = t
         if self._level_on:
             prev = self._level.sent
             if self._level.force(value, t):

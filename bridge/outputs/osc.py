@@ -9,7 +9,12 @@ Address scheme (the prefix is a setting, ``/fieldbridge`` by default)::
     /fieldbridge/sensor/<channel>/position f   calibrated hand position 0..1
     /fieldbridge/sensor/<channel>/raw      i   the board's count (or period ticks)
     /fieldbridge/sensor/<channel>/c        f   relative added capacitance (optional)
+    /fieldbridge/sensor/<channel>/baseline f   hand-absent level (optional)
     /fieldbridge/sensor/<channel>/present  i   (optional)
+
+Levels are clamped to 0..1 (NaN becomes 0) before they leave, and ``silence()`` sends
+level 0 for every voice once. A bundle that would exceed ``max_datagram`` (1,400 bytes
+by default, to stay under common network MTUs) is split into several bundles.
 
 Encoding follows the Open Sound Control 1.0 specification (M. Wright, CNMAT, 2002):
 big-endian int32/float32, NUL-terminated strings padded to a multiple of 4 bytes, a type
@@ -40,9 +45,9 @@ import re
 import socket
 import struct
 import time
-from collections.abc import Sequence
+from collections.abc import Callable, Sequence
 from operator import attrgetter
-from typing import Any, Callable, Literal
+from typing import Any, Literal
 
 from pydantic import BaseModel, ConfigDict, Field, field_validator
 
@@ -177,6 +182,14 @@ def parse_destination(text: str) -> tuple[str, int]:
     return m.group(1), port
 
 
+def _default_voice_fields() -> list[VoiceField]:
+    return ["hz", "note", "level"]
+
+
+def _default_sensor_fields() -> list[SensorField]:
+    return ["position", "raw"]
+
+
 class OscSettings(BaseModel):
     """Where OSC goes and what it carries. See the module docstring for the addresses."""
 
@@ -186,16 +199,15 @@ class OscSettings(BaseModel):
         default_factory=lambda: ["127.0.0.1:9300"], min_length=1, max_length=16,
         description="host:port (or [ipv6]:port) to send to; every reading goes to each",
     )
-    prefix: str = Field("/fieldbridge", description="first part of every address")
-    voice_fields: list[VoiceField] = Field(default_factory=lambda: ["hz", "note", "level"])
-    sensor_fields: list[SensorField] = Field(default_factory=lambda: ["position", "raw"])
-    bundle: bool = Field(True, description="one bundle per reading; false: one datagram a message")
+    prefix: str = Field(default="/fieldbridge", description="first part of every address")
+    voice_fields: list[VoiceField] = Field(default_factory=_default_voice_fields)
+    sensor_fields: list[SensorField] = Field(default_factory=_default_sensor_fields)
+    bundle: bool = Field(default=True, description="one bundle per reading; false: one datagram a message")
     time_tag: Literal["immediate", "scheduled"] = "immediate"
-    schedule_ahead_ms: float = Field(
-        10.0, ge=0.0, le=2000.0,
+    schedule_ahead_ms: float = Field(default=10.0, ge=0.0, le=2000.0,
         description="with scheduled time tags: play this long after sending (wall clock)",
     )
-    max_datagram: int = Field(1400, ge=128, le=65000, description="split bundles above this")
+    max_datagram: int = Field(default=1400, ge=128, le=65000, description="split bundles above this")
 
     @field_validator("destinations")
     @classmethod
@@ -229,7 +241,7 @@ def address_plan(
     settings: OscSettings, voices: Sequence[str], sensors: Sequence[str]
 ) -> list[tuple[str, str, str]]:
     """(address, type tag, field) for every message of a reading, in sending order."""
-    plan = []
+    plan: list[tuple[str, str, str]] = []
     for name in voices:
         base = f"{settings.prefix}/voice/{osc_name(name)}/"
         plan += [(base + f, FIELD_TYPES[f], f) for f in settings.voice_fields]
@@ -245,7 +257,7 @@ def address_plan(
 class _Packet:
     """One datagram of a compiled layout: a Struct, its argument list, its buffer."""
 
-    __slots__ = ("struct", "args", "buf", "first", "lo", "hi")
+    __slots__ = ("args", "buf", "first", "hi", "lo", "struct")
 
     def __init__(self, statics: list[bytes], codes: list[str], lo: int, bundled: bool) -> None:
         fmt = [">"]
@@ -317,7 +329,7 @@ def _safe_value(v: Any) -> Any:
         x = float(v)
     except (TypeError, ValueError):
         return 0
-    if x != x:
+    if math.isnan(x):
         return 0.0
     return max(-_FLT_MAX, min(_FLT_MAX, x))
 
@@ -363,7 +375,10 @@ class OscSink(Sink):
                     f"OSC destination {dest!r}: cannot resolve host {host!r} ({exc}); "
                     "check the name or use an IP address"
                 ) from exc
-            family, _type, _proto, _canon, addr = info[0]
+            # A name like "localhost" may list ::1 first, while most receivers listen on
+            # IPv4 only: take an IPv4 address when the name has one.
+            v4 = [i for i in info if i[0] == socket.AF_INET]
+            family, _type, _proto, _canon, addr = (v4 or info)[0]
             sock = self._socks.get(family)
             if sock is None:
                 sock = socket.socket(family, socket.SOCK_DGRAM)

@@ -65,7 +65,9 @@ class JackServer:
     log: IO[bytes]
 
     def stop(self) -> None:
-        _stop(self.proc)
+        # Be patient: a jackd killed before it unregisters leaves its entry in JACK's
+        # machine-wide registry (at most 8 servers) until a server of the same name starts.
+        _stop(self.proc, timeout=20.0)
         self.log.close()
 
     def run(self, *args: str, timeout: float = 10.0) -> subprocess.CompletedProcess[str]:
@@ -87,34 +89,68 @@ class JackServer:
             time.sleep(delay)
             delay = min(0.2, delay * 2)
 
+    def wait_connected(self, port: str, timeout: float = 10.0) -> list[str]:
+        """Wait until ``port`` has a connection; return the ports it is connected to."""
+        deadline = time.monotonic() + timeout
+        delay = 0.02
+        while True:
+            lines = self.run(require("jack_lsp"), "-c", port).stdout.splitlines()
+            peers = [ln.strip() for ln in lines[1:] if ln.startswith((" ", "\t"))]
+            if peers:
+                return peers
+            if time.monotonic() > deadline:
+                raise AssertionError(f"JACK port {port!r} got no connection: {lines}")
+            time.sleep(delay)
+            delay = min(0.2, delay * 2)
+
     def connect(self, source: str, dest: str) -> None:
         done = self.run(require("jack_connect"), source, dest)
         assert done.returncode == 0, f"jack_connect {source} {dest}: {done.stderr}"
 
 
-def start_jack(timeout: float = 15.0) -> JackServer:
-    """Start ``jackd --no-realtime -d dummy -r 48000 -p 256`` under a fresh server name."""
-    jackd = require("jackd")
-    name = f"fbtest-{os.getpid()}-{uuid.uuid4().hex[:8]}"
+#: Server names tried in turn. JACK keeps at most 8 servers in a machine-wide registry and
+#: frees a dead server's entry only when a server of the same name starts again, so a
+#: small fixed set of names never fills it, even after crashed runs.
+SERVER_NAMES = [f"fbtest{k}" for k in range(6)]
+
+
+def _running(name: str) -> bool:
     env = dict(os.environ, JACK_DEFAULT_SERVER=name, JACK_NO_START_SERVER="1")
-    # jackd's log goes to a file: an unread pipe would fill up and stall the server.
-    log = tempfile.TemporaryFile()
-    proc = subprocess.Popen(
-        [jackd, "--no-realtime", "-d", "dummy", "-r", "48000", "-p", "256"],
-        env=env,
-        stdout=log,
-        stderr=subprocess.STDOUT,
+    done = subprocess.run(
+        [require("jack_wait"), "-c"], env=env, capture_output=True, text=True, timeout=10
     )
-    server = JackServer(name, proc, env, log)
-    # jack_wait -w blocks until the server answers (or its timeout passes).
-    ready = server.run(require("jack_wait"), "-w", "-t", str(int(timeout)), timeout=timeout + 5)
-    if ready.returncode != 0 or proc.poll() is not None:
+    return done.stdout.strip() == "running"
+
+
+def start_jack(timeout: float = 15.0) -> JackServer:
+    """Start ``jackd --no-realtime -d dummy -r 48000 -p 256`` under a name nobody uses now."""
+    jackd = require("jackd")
+    errors: list[str] = []
+    for name in SERVER_NAMES:
+        if _running(name):  # another test session has it
+            continue
+        env = dict(os.environ, JACK_DEFAULT_SERVER=name, JACK_NO_START_SERVER="1")
+        # jackd's log goes to a file: an unread pipe would fill up and stall the server.
+        log = tempfile.TemporaryFile()
+        proc = subprocess.Popen(
+            [jackd, "--no-realtime", "-d", "dummy", "-r", "48000", "-p", "256"],
+            env=env,
+            stdout=log,
+            stderr=subprocess.STDOUT,
+        )
+        server = JackServer(name, proc, env, log)
+        # jack_wait -w blocks until the server answers (or its timeout passes).
+        ready = server.run(
+            require("jack_wait"), "-w", "-t", str(int(timeout)), timeout=timeout + 5
+        )
+        if ready.returncode == 0 and proc.poll() is None:
+            return server
+        # Lost a race for the name, or jackd failed: note why and try the next name.
         _stop(proc)
         log.seek(0)
-        err = log.read().decode(errors="replace")[-2000:]
+        errors.append(f"{name}: {log.read().decode(errors='replace')[-600:]}")
         log.close()
-        raise AssertionError(f"jackd did not start: {ready.stdout} {ready.stderr} {err}")
-    return server
+    raise AssertionError("jackd did not start under any test name:\n" + "\n".join(errors))
 
 
 @pytest.fixture(scope="session")
@@ -144,7 +180,9 @@ class MidiDump:
     """``jack_midi_dump`` running against a server; collects each event's raw bytes."""
 
     server: JackServer
-    client: str = "midi-monitor"
+    # jack_midi_dump's default client is "midi-monitor"; a fresh name per dump keeps a
+    # dump that is still shutting down from being mistaken for the next one.
+    client: str = field(default_factory=lambda: f"midi-monitor-{uuid.uuid4().hex[:6]}")
     proc: subprocess.Popen[str] | None = None
     events: queue.Queue[bytes] = field(default_factory=queue.Queue)
     lines: list[str] = field(default_factory=list)
@@ -203,7 +241,7 @@ class MidiDump:
 
 @pytest.fixture
 def midi_dump(jack_server: JackServer) -> Iterator[MidiDump]:
-    """A fresh ``jack_midi_dump`` (client midi-monitor, port midi-monitor:input)."""
+    """A fresh ``jack_midi_dump`` (client ``midi-monitor-<random>``, port ``<client>:input``)."""
     dump = MidiDump(jack_server)
     dump.start()
     try:

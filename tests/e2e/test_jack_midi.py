@@ -49,8 +49,10 @@ def h(text: str) -> list[bytes]:
 # Scripted play: (t, note, level) and, for each, what the wire must carry.
 # Settings: channel 1, slide mode, bend range 12, 14-bit expression (CC11/CC43), no ramp.
 SCRIPT: list[tuple[float, float, float, str]] = [
+    # The first note repeats RPN 0 (a synth connected after start missed it), then
     # level 0.25 -> sqrt law 0.5 -> 8192 of 16383 = MSB 0x40, LSB 0x00; velocity round(127*0.5)=64.
-    (0.00, 69.0, 0.25, "B0 0B 40, B0 2B 00, 90 45 40"),
+    (0.00, 69.0, 0.25, "B0 65 00, B0 64 00, B0 06 0C, B0 26 00, B0 65 7F, B0 64 7F,"
+     " B0 0B 40, B0 2B 00, 90 45 40"),
     # +6 semitones on key 69 at R=12: 8192 + 4096 = 12288 = E0 00 60.
     (0.01, 75.0, 0.25, "E0 00 60"),
     # -3 semitones: 8192 - 2048 = 6144 = LSB 0x00, MSB 0x30.
@@ -90,14 +92,18 @@ def settings(**kw: object) -> MidiSettings:
     return MidiSettings(**base)  # type: ignore[arg-type]
 
 
-def play(sink: MidiSink, dump: MidiDump) -> None:
+def play(sink: MidiSink, dump: MidiDump, *, started: bool) -> None:
+    """Play SCRIPT; ``started``: the sink sent its set-up at open (else with the first reading)."""
     reading = Reading()
-    assert dump.take(len(h(START))) == h(START)
-    for t, note, level, wire in SCRIPT:
+    if started:
+        assert dump.take(len(h(START))) == h(START)
+    for i, (t, note, level, wire) in enumerate(SCRIPT):
         reading.t = t
         reading.voices[0].note = note
         reading.voices[0].level = level
         sink.send(reading)
+        if i == 0 and not started:
+            wire = f"{START}, {wire}"
         got = dump.take(len(h(wire)))
         assert got == h(wire), f"at t={t}: {[g.hex(' ') for g in got]}"
         for msg in got:  # every data byte of a MIDI 1.0 message is 0..127
@@ -114,7 +120,7 @@ def test_virtual_port_carries_setup_notes_bends_and_controllers(
     jack_server.connect(port, midi_dump.port)
     sink = MidiSink(s, ports, voices=1)
     with sink:
-        play(sink, midi_dump)
+        play(sink, midi_dump, started=True)
         sink.send(Reading(t=0.07, voices=[Voice(note=70.0, level=0.25)]))
         # note on again: level first (MSB 0x40), then the bend for key 70 (centre), then the note
         assert midi_dump.take(4) == h("B0 0B 40, B0 2B 00, E0 00 40, 90 46 40")
@@ -126,12 +132,15 @@ def test_virtual_port_carries_setup_notes_bends_and_controllers(
 
 
 def test_named_port_is_found_without_full_name(jack_server: JackServer, midi_dump: MidiDump) -> None:
-    # "midi-monitor" is the client part of "midi-monitor:input": the matcher finds it and
-    # rtmidi connects our output to it, no jack_connect needed.
-    s = settings(virtual=False, connect=["midi-monitor"], client_name=f"fbnamed{os.getpid()}")
-    sink = MidiSink(s, voices=1)
+    # The client name alone ("midi-monitor-xxxxxx" for "midi-monitor-xxxxxx:input"): the
+    # matcher finds the port and rtmidi connects our output to it, no jack_connect needed.
+    s = settings(virtual=False, connect=[midi_dump.client], client_name=f"fbnamed{os.getpid()}")
+    sink = MidiSink(s)  # voices from the first reading: set-up goes out with the first note
     with sink:
-        play(sink, midi_dump)
+        # JACK applies a new connection from the next process cycle: wait until another
+        # client sees it before playing.
+        jack_server.wait_connected(midi_dump.port)
+        play(sink, midi_dump, started=False)
     assert midi_dump.take(1) == h("B0 7B 00")
 
 
