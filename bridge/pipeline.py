@@ -307,7 +307,8 @@ class Engine:
     def rebase(self) -> None:
         """Take the current readings as the new hand-absent levels (re-capture of baseline)."""
         for s in self._sensing:
-            s.tracker.rebase(s.view.raw or None)
+            if s.view.raw > 0.0:
+                s.tracker.rebase()  # the last valid (reference-corrected) reading
         if self._ref is not None:
             raw = self.reading.channels[self._ref_index].raw
             if raw > 0:

@@ -23,12 +23,13 @@ Cheat sheet::
 
     store = Store.locate()                    # or Store(Path("/somewhere"))
     rig = store.load_rig()                    # Rig, validated
-    venue = store.load_venue("lantern-room")  # VenueProfile, validated
+    venue = store.load_venue("tin-lantern")   # VenueProfile, validated
     played = apply_venue(rig, venue)          # the rig with this room's overrides applied
-    store.save_venue("lantern-room", venue)   # atomic, keeps comments, skips if unchanged
-    store.activate("lantern-room")            # refuses an invalid profile, keeps the old one
+    store.save_venue("tin-lantern", venue)    # atomic, keeps comments, skips if unchanged
+    store.activate("tin-lantern")             # refuses an invalid profile, keeps the old one
     store.list_venues()                       # [VenueSummary(name, created, quality, ...)]
-    store.compare("lantern-room", "harbour-chapel")   # [Difference(path, a, b)]
+    store.compare("tin-lantern", "saltmarsh-chapel")   # [Difference(path, a, b)]
+    setup_parts = played.channels, played.voices, venue.calibration()   # for the daemon
 
 Where the store lives, first match wins:
 
@@ -56,22 +57,23 @@ import logging
 import math
 import os
 import re
-import types
-from collections.abc import Iterable, Mapping, MutableMapping
+from collections.abc import Mapping
 from dataclasses import dataclass
-from datetime import date, datetime, time
-from enum import Enum
-from functools import lru_cache
-from pathlib import Path, PurePath
-from typing import Annotated, Any, Literal, Optional, TypeVar, Union, get_args, get_origin
+from datetime import datetime
+from functools import cache
+from pathlib import Path
+from typing import Annotated, Any, Literal
 
 import platformdirs
-import tomlkit
-from pydantic import BaseModel, ConfigDict, Field, StringConstraints, ValidationError, create_model
-from pydantic import model_validator
-from tomlkit.exceptions import TOMLKitError
-from tomlkit.container import Container
-from tomlkit.items import AoT, Array, Table
+from pydantic import (
+    BaseModel,
+    ConfigDict,
+    Field,
+    StringConstraints,
+    ValidationError,
+    create_model,
+    model_validator,
+)
 
 from bridge.baseline import BaselineSettings
 from bridge.calibrate import ChannelCalibration, resolution_report
@@ -86,12 +88,19 @@ from bridge.sim import SimSettings
 from bridge.smoothing import SmoothingSettings
 from bridge.soundcheck import RigCalibration
 from bridge.sources import SourceSettings
-from bridge.storage import atomic_write, read_bytes
+from bridge.storage import (
+    ABSENT,
+    SCHEMA,
+    Difference,
+    atomic_write,
+    differences,
+    load_model,
+    loc_text,
+    save_model,
+    validation_problems,
+)
 
 log = logging.getLogger(__name__)
-
-#: The file layout version this code reads and writes.
-SCHEMA = 1
 
 APP_NAME = "fieldbridge"
 ENV_HOME = "FIELDBRIDGE_HOME"
@@ -106,13 +115,17 @@ NAME_MAX = 64
 # look-alikes such as the Kelvin sign, which lower-cases to "k".
 _NAME_RE = re.compile(r"[a-z0-9][a-z0-9._-]*", re.ASCII | re.IGNORECASE)
 # Device names some systems reserve whatever the extension (they would open a device).
-_RESERVED = {"con", "prn", "aux", "nul", *(f"com{i}" for i in range(1, 10)),
-             *(f"lpt{i}" for i in range(1, 10))}
+_RESERVED = {
+    "con",
+    "prn",
+    "aux",
+    "nul",
+    *(f"com{i}" for i in range(1, 10)),
+    *(f"lpt{i}" for i in range(1, 10)),
+}
 
 # Channel and voice names as written in the rig (the same rule as pipeline.py).
 _KEY = Annotated[str, StringConstraints(pattern=r"^[A-Za-z][A-Za-z0-9_-]{0,31}$")]
-
-M = TypeVar("M", bound=BaseModel)
 
 
 class _Model(BaseModel):
@@ -126,14 +139,18 @@ class BoardSettings(_Model):
     """What the board measures with: its counting window and, for period boards, its clock."""
 
     window_s: float = Field(
-        0.02, gt=0.0, le=1.0,
+        default=0.02,
+        gt=0.0,
+        le=1.0,
         description="one frame per window; 20 ms rejects 50 Hz hum, 16.67 ms 60 Hz, 100 ms both",
     )
     clock_hz: float | None = Field(
-        None, gt=0.0, description="timer clock of a period-timing board (for the resolution report)"
+        default=None,
+        gt=0.0,
+        description="timer clock of a period-timing board (for the resolution report)",
     )
     mains_hz: Literal[50, 60] | None = Field(
-        None, description="local mains frequency, so the report can check hum rejection"
+        default=None, description="local mains frequency, so the report can check hum rejection"
     )
 
     @property
@@ -146,7 +163,7 @@ class ControlSettings(_Model):
 
     enabled: bool = True
     socket: str | None = Field(
-        None, description="socket path; unset: control.sock in the per-user runtime folder"
+        default=None, description="socket path; unset: control.sock in the per-user runtime folder"
     )
 
 
@@ -159,8 +176,11 @@ class OutputSettings(_Model):
 
     def enabled(self) -> dict[str, BaseModel]:
         """Output kind (as in ``bridge.outputs.SINKS``) -> its settings, for those present."""
-        return {k: v for k, v in (("midi", self.midi), ("osc", self.osc),
-                                  ("midifile", self.midifile)) if v is not None}
+        return {
+            k: v
+            for k, v in (("midi", self.midi), ("osc", self.osc), ("midifile", self.midifile))
+            if v is not None
+        }
 
 
 class Rig(_Model):
@@ -217,9 +237,13 @@ def rig_problems(rig: Rig) -> list[str]:
             if ch is None:
                 continue
             if ch not in roles:
-                out.append(f"voices[{i}].{key}: no channel named {ch!r} (channels: {', '.join(names)})")
+                out.append(
+                    f"voices[{i}].{key}: no channel named {ch!r} (channels: {', '.join(names)})"
+                )
             elif roles[ch] != want:
-                out.append(f"voices[{i}].{key}: channel {ch!r} has role {roles[ch]!r}, not {want!r}")
+                out.append(
+                    f"voices[{i}].{key}: channel {ch!r} has role {roles[ch]!r}, not {want!r}"
+                )
     f = rig.frames
     for ch in f.channel_kinds:
         if ch not in roles:
@@ -251,7 +275,9 @@ def _sim_problems(rig: Rig, s: SimSettings) -> list[str]:
         out.append(f"sim: the simulated board sends {s.names}, the rig reads {names} (same order)")
     for c in rig.channels:
         if c.kind != s.kind:
-            out.append(f"sim.kind: the simulated board reports {s.kind}s, channel {c.name!r} {c.kind}s")
+            out.append(
+                f"sim.kind: the simulated board reports {s.kind}s, channel {c.name!r} {c.kind}s"
+            )
             break
     if s.format != rig.frames.format:
         out.append(f"sim.format: {s.format!r} but frames.format is {rig.frames.format!r}")
@@ -267,10 +293,13 @@ def _sim_problems(rig: Rig, s: SimSettings) -> list[str]:
 
 def _annotation_with_constraints(info: Any) -> Any:
     ann = info.annotation
-    return Annotated[(ann, *info.metadata)] if info.metadata else ann
+    if not info.metadata:
+        return ann
+    args = (ann, *info.metadata)
+    return Annotated[args]  # the same as Annotated[ann, *metadata] (3.11 syntax)
 
 
-@lru_cache(maxsize=None)
+@cache
 def overrides_model(cls: type[BaseModel]) -> type[BaseModel]:
     """A model with every field of ``cls`` optional: the keys a venue may override.
 
@@ -278,7 +307,7 @@ def overrides_model(cls: type[BaseModel]) -> type[BaseModel]:
     override is applied to the rig (see :func:`apply_venue`).
     """
     fields: dict[str, Any] = {
-        name: (Optional[_annotation_with_constraints(info)], Field(None, description=info.description))
+        name: (_annotation_with_constraints(info) | None, Field(None, description=info.description))
         for name, info in cls.model_fields.items()
     }
     return create_model(  # type: ignore[call-overload,no-any-return]
@@ -344,8 +373,10 @@ def override_problems(venue: VenueProfile) -> list[tuple[str, str]]:
         (("smoothing",), venue.smoothing, SmoothingSettings),
     ]
     for name, ov in venue.voices.items():
-        parts += [(("voices", name, "pitch"), ov.pitch, PitchSettings),
-                  (("voices", name, "level"), ov.level, LevelSettings)]
+        parts += [
+            (("voices", name, "pitch"), ov.pitch, PitchSettings),
+            (("voices", name, "level"), ov.level, LevelSettings),
+        ]
     out = []
     for prefix, given, full in parts:
         if given is None:
@@ -354,10 +385,10 @@ def override_problems(venue: VenueProfile) -> list[tuple[str, str]]:
         try:
             full.model_validate({**full().model_dump(), **keys})
         except ValidationError as exc:
-            for loc, msg in _problems(exc, keys, full):
+            for loc, msg in validation_problems(exc, keys, full):
                 head = loc.split(".")[0].split("[")[0]
                 if head in keys:
-                    out.append((_loc_text(prefix) + "." + loc, msg))
+                    out.append((loc_text(prefix) + "." + loc, msg))
     return out
 
 
@@ -368,23 +399,32 @@ def venue_problems(rig: Rig, venue: VenueProfile) -> list[str]:
         if c.role in ("pitch", "volume"):
             cal = venue.channels.get(c.name)
             if cal is None:
-                out.append(f"channels.{c.name}: no calibration for the {c.role} channel: run a soundcheck")
+                out.append(
+                    f"channels.{c.name}: no calibration for the {c.role} channel: run a soundcheck"
+                )
             elif cal.kind != c.kind:
                 out.append(
                     f"channels.{c.name}.kind: calibrated for {cal.kind}s but the rig's channel "
                     f"reports {c.kind}s: run a soundcheck"
                 )
         elif c.role == "reference" and venue.reference_base is None:
-            out.append(f"reference_base: the rig has a reference channel {c.name!r} but no level for it")
+            out.append(
+                f"reference_base: the rig has a reference channel {c.name!r} but no level for it"
+            )
     vnames = [v.name for v in rig.voices]
     for name in venue.voices:
         if name not in vnames:
-            out.append(f"voices.{name}: the rig has no voice {name!r} (voices: {', '.join(vnames)})")
+            out.append(
+                f"voices.{name}: the rig has no voice {name!r} (voices: {', '.join(vnames)})"
+            )
     if not out:
         try:
             _merged(rig, venue)
         except ValidationError as exc:
-            out += [f"{loc}: {msg}" if loc else msg for loc, msg in _problems(exc, _merged_data(rig, venue), Rig)]
+            out += [
+                f"{loc}: {msg}" if loc else msg
+                for loc, msg in validation_problems(exc, _merged_data(rig, venue), Rig)
+            ]
     return out
 
 
@@ -415,390 +455,17 @@ def _merged(rig: Rig, venue: VenueProfile) -> Rig:
     return Rig.model_validate(_merged_data(rig, venue))
 
 
-# ------------------------------------------------------------------------ reading files
-
-
-def _read_document(path: Path) -> tomlkit.TOMLDocument:
-    raw = read_bytes(path)
-    try:
-        text = raw.decode("utf-8")
-    except UnicodeDecodeError as exc:
-        raise ConfigError(f"{path}: not UTF-8 text (byte {exc.start}): save it as UTF-8") from exc
-    try:
-        return tomlkit.parse(text)
-    except TOMLKitError as exc:
-        raise ConfigError(f"{path}: not valid TOML: {exc}") from exc
-
-
-def _check_header(path: Path, data: Mapping[str, Any], kind: str) -> None:
-    schema = data.get("schema")
-    if schema is None:
-        raise ConfigError(f"{path}: schema: missing; the first line should be `schema = {SCHEMA}`")
-    if isinstance(schema, bool) or not isinstance(schema, int):
-        raise ConfigError(f"{path}: schema: must be a whole number such as {SCHEMA} (found {schema!r})")
-    if schema > SCHEMA:
-        raise ConfigError(
-            f"{path}: schema: the file is schema {schema}, written by a newer fieldbridge; this "
-            f"version reads schema {SCHEMA}. Upgrade fieldbridge."
-        )
-    if schema < SCHEMA:
-        raise ConfigError(
-            f"{path}: schema: the file is schema {schema}, older than this version's {SCHEMA}, "
-            "and cannot be read; recreate it from the examples in profiles/."
-        )
-    found = data.get("kind")
-    if found != kind:
-        what = {"rig": "a rig file", "venue": "a venue profile"}
-        if found in what:
-            raise ConfigError(f"{path}: kind: this is {what[found]}, expected {what[kind]}")
-        raise ConfigError(f'{path}: kind: must be "{kind}" (found {found!r})')
-
-
-def _load(path: Path | str, cls: type[M], kind: str) -> M:
-    path = Path(path)
-    data = _read_document(path).unwrap()
-    _check_header(path, data, kind)
-    body = {k: v for k, v in data.items() if k not in ("schema", "kind")}
-    try:
-        model = cls.model_validate(body)
-    except ValidationError as exc:
-        raise ConfigError(_error_text(path, exc, body, cls)) from exc
-    except BridgeError as exc:
-        raise ConfigError(f"{path}: {exc}") from exc
-    if isinstance(model, VenueProfile):
-        problems = override_problems(model)
-        if problems:
-            raise ConfigError("\n".join(f"{path}: {loc}: {msg}" for loc, msg in problems))
-    return model
+# ------------------------------------------------------------------------ files
 
 
 def load_rig(path: Path | str) -> Rig:
     """Read and check a rig file; ConfigError names the file and every bad field."""
-    return _load(path, Rig, "rig")
+    return load_model(path, Rig, "rig")
 
 
 def load_venue(path: Path | str) -> VenueProfile:
     """Read and check a venue profile; ConfigError names the file and every bad field."""
-    return _load(path, VenueProfile, "venue")
-
-
-# Pydantic's error locations, made into the paths a person sees in the file.
-
-
-def _problems(
-    exc: ValidationError, data: Any, root: type[BaseModel]
-) -> list[tuple[str, str]]:
-    out: list[tuple[str, str]] = []
-    for err in exc.errors(include_url=False):
-        loc = _real_loc(err["loc"], data)
-        kind, msg = err["type"], err["msg"]
-        if kind == "extra_forbidden":
-            allowed = _allowed_keys(root, loc[:-1])
-            msg = "unknown key" + (f"; allowed here: {', '.join(allowed)}" if allowed else "")
-        elif kind == "missing":
-            msg = "required, but missing"
-        else:
-            msg = msg.removeprefix("Value error, ")
-            found = err.get("input")
-            if isinstance(found, (str, int, float, bool)) and len(repr(found)) <= 60:
-                msg += f" (found {found!r})"
-        if "\n" in msg and not loc:  # a model-level check reports several problems at once
-            out += [("", line) for line in msg.splitlines()]
-        else:
-            out.append((_loc_text(loc), msg))
-    return out
-
-
-def _error_text(path: Path, exc: ValidationError, data: Any, root: type[BaseModel]) -> str:
-    lines = [f"{path}: {loc}: {msg}" if loc else f"{path}: {msg}" for loc, msg in _problems(exc, data, root)]
-    return "\n".join(lines)
-
-
-def _real_loc(loc: tuple[Any, ...], data: Any) -> tuple[Any, ...]:
-    """Keep the parts of a location that are keys or indexes of the data (drop union tags)."""
-    out: list[Any] = []
-    node = data
-    for i, part in enumerate(loc):
-        last = i == len(loc) - 1
-        if isinstance(node, Mapping) and isinstance(part, str) and (part in node or last):
-            out.append(part)
-            node = node.get(part)
-        elif isinstance(node, list) and isinstance(part, int) and 0 <= part < len(node):
-            out.append(part)
-            node = node[part]
-    return tuple(out)
-
-
-_BARE = re.compile(r"[A-Za-z0-9_-]+")
-
-
-def _loc_text(loc: Iterable[Any]) -> str:
-    text = ""
-    for part in loc:
-        if isinstance(part, int):
-            text += f"[{part}]"
-        elif _BARE.fullmatch(str(part)):
-            text += f".{part}" if text else str(part)
-        else:
-            text += f"[{str(part)!r}]"
-    return text
-
-
-def _plain_type(tp: Any) -> Any:
-    while True:
-        origin = get_origin(tp)
-        if origin is Annotated:
-            tp = get_args(tp)[0]
-        elif origin in (Union, types.UnionType):
-            members = [a for a in get_args(tp) if a is not type(None)]
-            models = [a for a in members if isinstance(a, type) and issubclass(a, BaseModel)]
-            if len(models) != 1:
-                return tp
-            tp = models[0]
-        else:
-            return tp
-
-
-def _allowed_keys(root: type[BaseModel], loc: tuple[Any, ...]) -> list[str]:
-    tp: Any = root
-    for part in loc:
-        tp = _plain_type(tp)
-        origin = get_origin(tp)
-        if isinstance(tp, type) and issubclass(tp, BaseModel) and isinstance(part, str):
-            info = tp.model_fields.get(part)
-            if info is None:
-                return []
-            tp = info.annotation
-        elif origin in (list, tuple) and isinstance(part, int):
-            tp = get_args(tp)[0]
-        elif origin is dict and isinstance(part, str):
-            tp = get_args(tp)[1]
-        else:
-            return []
-    tp = _plain_type(tp)
-    if isinstance(tp, type) and issubclass(tp, BaseModel):
-        return list(tp.model_fields)
-    return []
-
-
-# ------------------------------------------------------------------------ writing files
-
-
-class _Default:
-    """Marks a value equal to its field's default: not added to a file that lacks it."""
-
-    __slots__ = ("value",)
-
-    def __init__(self, value: Any) -> None:
-        self.value = value
-
-
-_NO_DEFAULT = object()
-
-
-def _field_default(info: Any) -> Any:
-    try:
-        return info.get_default(call_default_factory=True)
-    except TypeError:  # a default factory that wants the other fields: treat as no default
-        return _NO_DEFAULT
-
-
-def _dump_model(model: BaseModel) -> Any:
-    raw = model.model_dump(mode="python")
-    if not isinstance(raw, dict):
-        return _plain(raw)
-    out: dict[str, Any] = {}
-    for name, info in type(model).model_fields.items():
-        if name not in raw:
-            continue  # left out by the model's own serializer
-        data = _to_data(getattr(model, name), raw[name])
-        if data is None:
-            # TOML has no null: an unset optional is an absent key, which reads back as
-            # the default. When the default is not None that would change the value.
-            default = _field_default(info)
-            if not info.is_required() and default is not None and default is not _NO_DEFAULT:
-                raise ConfigError(
-                    f"{type(model).__name__}.{name}: 'unset' cannot be written in TOML, and "
-                    f"leaving the key out means its default {default!r}"
-                )
-            continue
-        if not info.is_required() and _equal(getattr(model, name), _field_default(info)):
-            data = _Default(data)
-        out[name] = data
-    return out
-
-
-def _to_data(value: Any, raw: Any) -> Any:
-    if isinstance(value, BaseModel):
-        return _dump_model(value)
-    if isinstance(value, (list, tuple)) and isinstance(raw, list) and len(value) == len(raw):
-        return [_to_data(v, r) for v, r in zip(value, raw)]
-    if isinstance(value, Mapping) and isinstance(raw, dict):
-        return {str(k): _to_data(value[k], raw[k]) for k in value if raw.get(k) is not None}
-    return _plain(raw)
-
-
-def _plain(v: Any) -> Any:
-    """Python values as TOML can hold them."""
-    if v is None or isinstance(v, (bool, int, float, str, datetime, date, time)):
-        return v
-    if isinstance(v, Enum):
-        return _plain(v.value)
-    if isinstance(v, PurePath):
-        return str(v)
-    if isinstance(v, Mapping):
-        return {str(k): _plain(x) for k, x in v.items() if x is not None}
-    if isinstance(v, (list, tuple, set, frozenset)):
-        items = sorted(v) if isinstance(v, (set, frozenset)) else v
-        return [_plain(x) for x in items]
-    if hasattr(v, "item"):  # numpy scalars
-        return _plain(v.item())
-    raise ConfigError(f"cannot store a value of type {type(v).__name__} in TOML")
-
-
-def _equal(a: Any, b: Any) -> bool:
-    try:
-        return bool(a == b)
-    except Exception:  # noqa: BLE001 - exotic __eq__: not equal, so the value is written
-        return False
-
-
-def _same(a: Any, b: Any) -> bool:
-    """Equal as TOML values: 5550 and 5550.0 are the same number, true and 1 are not."""
-    if isinstance(a, bool) or isinstance(b, bool):
-        return type(a) is type(b) and a == b
-    if isinstance(a, (int, float)) and isinstance(b, (int, float)):
-        return a == b or (a != a and b != b)  # NaN equals NaN here
-    if isinstance(a, Mapping) and isinstance(b, Mapping):
-        return a.keys() == b.keys() and all(_same(a[k], b[k]) for k in a)
-    if isinstance(a, list) and isinstance(b, list):
-        return len(a) == len(b) and all(_same(x, y) for x, y in zip(a, b))
-    return type(a) is type(b) and a == b
-
-
-def _unwrapped(item: Any) -> Any:
-    return item.unwrap() if hasattr(item, "unwrap") else item
-
-
-def _fresh(v: Any) -> Any:
-    """Values for new content: everything explicit, except empty tables left at default."""
-    if isinstance(v, _Default):
-        if isinstance(v.value, dict) and not v.value:
-            return None
-        return _fresh(v.value)
-    if isinstance(v, dict):
-        return {k: x for k, x in ((k, _fresh(x)) for k, x in v.items()) if x is not None}
-    if isinstance(v, list):
-        return [_fresh(x) for x in v]
-    if isinstance(v, str) and "\n" in v:
-        return tomlkit.string(v, multiline=True)
-    return v
-
-
-def _merge_table(table: MutableMapping[str, Any], data: Mapping[str, Any], *, fresh: bool = False) -> None:
-    """Change ``table`` (part of a tomlkit document) in place to hold ``data``.
-
-    Values that are already equal are not touched, so their formatting and comments
-    stay; keys no longer wanted are removed. A key the file leaves out stays out while
-    its value is the default (unless the document is ``fresh``: then all is written).
-    """
-    for key in list(table.keys()):
-        if key not in data:
-            del table[key]
-    for key, value in data.items():
-        if key in table:
-            _merge_value(table, key, value.value if isinstance(value, _Default) else value)
-        elif fresh or not isinstance(value, _Default):
-            new = _fresh(value)
-            if new is not None:
-                _add_key(table, key, new)
-
-
-def _add_key(table: MutableMapping[str, Any], key: str, value: Any) -> None:
-    """Add a new key; a plain value goes right after the table's last plain value.
-
-    Appending would put it after the comments that introduce the next table (tomlkit
-    counts them as the end of this one), so it is inserted instead when possible.
-    """
-    container = table if isinstance(table, Container) else getattr(table, "value", None)
-    if not isinstance(value, (dict, list)) or isinstance(value, Array):
-        last = None
-        if isinstance(container, Container):
-            for k, item in container.body:
-                if k is not None and not isinstance(item, (Table, AoT)):
-                    last = k
-        if last is not None:
-            try:
-                container._insert_after(last, key, value)  # noqa: SLF001 - no public insert
-                return
-            except (TOMLKitError, KeyError, ValueError, AttributeError):
-                pass
-    table[key] = value
-
-
-def _merge_value(table: MutableMapping[str, Any], key: str, value: Any) -> None:
-    old = table[key]
-    if isinstance(value, dict) and isinstance(old, MutableMapping):
-        _merge_table(old, value)
-        return
-    if isinstance(old, AoT) and isinstance(value, list) and all(isinstance(v, dict) for v in value):
-        for i, item in enumerate(value):
-            if i < len(old):
-                _merge_table(old[i], item)
-            else:
-                old.append(_fresh(item))
-        while len(old) > len(value):
-            del old[len(old) - 1]
-        return
-    if not _same(_unwrapped(old), _strip_plain(value)):
-        table[key] = _fresh(value)
-
-
-def _strip_plain(v: Any) -> Any:
-    if isinstance(v, _Default):
-        return _strip_plain(v.value)
-    if isinstance(v, dict):
-        return {k: _strip_plain(x) for k, x in v.items()}
-    if isinstance(v, list):
-        return [_strip_plain(x) for x in v]
-    return v
-
-
-def _render(path: Path, model: BaseModel, kind: str, header: str, keep_comments: bool) -> bytes:
-    data = {"schema": SCHEMA, "kind": kind, **_dump_model(model)}
-    doc: tomlkit.TOMLDocument | None = None
-    fresh = True
-    if keep_comments and path.exists():
-        try:
-            doc = _read_document(path)
-            fresh = False
-        except ConfigError as exc:
-            log.warning("%s could not be read (%s); writing it afresh (the old file is kept as .bak)",
-                        path, exc)
-    if doc is None:
-        doc = tomlkit.document()
-        for line in header.splitlines():
-            doc.add(tomlkit.comment(line) if line else tomlkit.nl())
-        doc.add(tomlkit.nl())
-        doc.add("schema", SCHEMA)
-        doc.add("kind", kind)
-    _merge_table(doc, data, fresh=fresh)
-    return tomlkit.dumps(doc).encode("utf-8")
-
-
-def _save(path: Path | str, model: M, kind: str, header: str, keep_comments: bool) -> bool:
-    path = Path(path)
-    # Check the whole model again: a value assigned after loading may not have been.
-    full = _strip_plain(_dump_model(model))
-    try:
-        type(model).model_validate(full)
-    except ValidationError as exc:
-        raise ConfigError("not saved:\n" + _error_text(path, exc, full, type(model))) from exc
-    if isinstance(model, VenueProfile):
-        problems = override_problems(model)
-        if problems:
-            raise ConfigError("not saved:\n" + "\n".join(f"{path}: {a}: {b}" for a, b in problems))
-    return atomic_write(path, _render(path, model, kind, header, keep_comments))
+    return load_model(path, VenueProfile, "venue", check=override_problems)
 
 
 _RIG_HEADER = "fieldbridge rig file: the instrument, its outputs and how it is tracked."
@@ -807,61 +474,19 @@ _VENUE_HEADER = "fieldbridge venue profile: one room's calibration and overrides
 
 def save_rig(path: Path | str, rig: Rig, *, keep_comments: bool = True) -> bool:
     """Write a rig file atomically; returns False when the file already held these values."""
-    return _save(path, rig, "rig", _RIG_HEADER, keep_comments)
+    return save_model(path, rig, "rig", header=_RIG_HEADER, keep_comments=keep_comments)
 
 
 def save_venue(path: Path | str, venue: VenueProfile, *, keep_comments: bool = True) -> bool:
     """Write a venue profile atomically; returns False when nothing changed."""
-    return _save(path, venue, "venue", _VENUE_HEADER, keep_comments)
-
-
-# ----------------------------------------------------------------------------- comparing
-
-
-class _Absent:
-    def __repr__(self) -> str:
-        return "(absent)"
-
-
-#: Stands for a value that one side of a comparison does not have.
-ABSENT: Any = _Absent()
-
-
-@dataclass(frozen=True)
-class Difference:
-    """One field that differs: its path as written in the file, and the two values."""
-
-    path: str
-    a: Any
-    b: Any
-
-    def __str__(self) -> str:
-        return f"{self.path}: {self.a!r} -> {self.b!r}"
-
-
-def _flatten(data: Any, prefix: tuple[Any, ...], out: dict[str, Any]) -> None:
-    if isinstance(data, Mapping) and data:
-        for k, v in data.items():
-            _flatten(v, (*prefix, k), out)
-    elif isinstance(data, list) and data and all(isinstance(x, Mapping) for x in data):
-        for i, v in enumerate(data):
-            _flatten(v, (*prefix, i), out)
-    else:
-        out[_loc_text(prefix)] = data
-
-
-def differences(a: BaseModel, b: BaseModel) -> list[Difference]:
-    """Every field whose value differs between two models, defaults included."""
-    fa: dict[str, Any] = {}
-    fb: dict[str, Any] = {}
-    _flatten(_strip_plain(_dump_model(a)), (), fa)
-    _flatten(_strip_plain(_dump_model(b)), (), fb)
-    keys = list(fa) + [k for k in fb if k not in fa]
-    return [
-        Difference(k, fa.get(k, ABSENT), fb.get(k, ABSENT))
-        for k in keys
-        if k not in fa or k not in fb or not _same(fa[k], fb[k])
-    ]
+    return save_model(
+        path,
+        venue,
+        "venue",
+        header=_VENUE_HEADER,
+        keep_comments=keep_comments,
+        check=override_problems,
+    )
 
 
 # -------------------------------------------------------------------- names and folders
@@ -1017,14 +642,20 @@ class Store:
         return save_venue(path, profile, keep_comments=keep_comments)
 
     def venue_names(self) -> list[str]:
+        """Names of the venue files, sorted; files whose name is not a valid one are skipped."""
         if not self.venues_dir.is_dir():
             return []
         names = []
         for p in sorted(self.venues_dir.glob("*.toml")):
             try:
-                names.append(check_name(p.stem))
-            except ConfigError:
-                log.warning("%s: ignored, its name is not a valid profile name", p)
+                name = check_name(p.stem)
+            except ConfigError as exc:
+                log.warning("%s: ignored: %s", p, exc)
+                continue
+            if name != p.stem:
+                log.warning("%s: ignored: rename it to %s.toml (names are lower case)", p, name)
+                continue
+            names.append(name)
         return names
 
     def list_venues(self) -> list[VenueSummary]:
@@ -1036,20 +667,35 @@ class Store:
             rig = None
         out = []
         for name in self.venue_names():
-            path = self.venue_path(name)
-            modified = datetime.fromtimestamp(path.stat().st_mtime).astimezone()
+            path = self.venues_dir / f"{name}.toml"
             try:
-                venue = load_venue(path)
+                mtime = path.stat().st_mtime
+            except OSError:  # a dangling link: its own time, and load_venue says why
+                mtime = path.lstat().st_mtime
+            modified = datetime.fromtimestamp(mtime).astimezone()
+            try:
+                venue = load_venue(self.venue_path(name))
             except ConfigError as exc:
-                out.append(VenueSummary(name, path, None, modified, name == active, problem=str(exc)))
+                out.append(
+                    VenueSummary(name, path, None, modified, name == active, problem=str(exc))
+                )
                 continue
             problems = venue_problems(rig, venue) if rig is not None else []
             range_pct, cents = _quality(venue, rig)
             kinds = {c.kind for c in venue.channels.values()}
-            out.append(VenueSummary(
-                name, path, venue.created, modified, name == active, range_pct, cents,
-                "\n".join(problems) or None, "tick" if kinds == {"period"} else "count",
-            ))
+            out.append(
+                VenueSummary(
+                    name,
+                    path,
+                    venue.created,
+                    modified,
+                    name == active,
+                    range_pct,
+                    cents,
+                    "\n".join(problems) or None,
+                    "tick" if kinds == {"period"} else "count",
+                )
+            )
         return out
 
     # -- the active venue
@@ -1089,7 +735,7 @@ class Store:
         except ConfigError as exc:
             raise ConfigError(f"venue {name!r} not activated ({stays}):\n{exc}") from exc
         self.root.mkdir(parents=True, exist_ok=True)
-        atomic_write(self.active_path, f"{name}\n".encode("utf-8"), backup=False)
+        atomic_write(self.active_path, f"{name}\n".encode(), backup=False)
         return venue
 
     def compare(self, a: str | VenueProfile, b: str | VenueProfile) -> list[Difference]:

@@ -165,8 +165,15 @@ def judge_hold(
     *,
     rate_hz: float,
     max_drift_sigma: float = 4.0,
+    max_drift_c: float = 3e-4,
 ) -> HoldVerdict:
-    """Reject a hold whose readings drifted (a hand moving, a board warming up)."""
+    """Reject a hold whose readings drifted (a hand moving, a board warming up).
+
+    A drift counts when it stands out of the noise (``max_drift_sigma``) and is large
+    enough to matter musically: ``max_drift_c`` of relative capacitance, about 1 % of a
+    typical playing range of a few percent (DOMAIN.md section 1). A quiet board's slow
+    thermal creep passes; a hand that moved during the hold does not.
+    """
     problems = []
     if values.shape[0] < 10:
         return HoldVerdict(False, ["too few frames arrived: is the board sending?"])
@@ -174,7 +181,7 @@ def judge_hold(
         if ch.role not in ("pitch", "volume"):
             continue
         st = hold_stats(values[:, i], rate_hz, max_drift_sigma=max_drift_sigma)
-        if not st.stable:
+        if not st.stable and abs(st.drift) > max_drift_c * abs(st.mean):
             problems.append(
                 f"{ch.name}: the reading moved by {st.drift_sigma:.1f} noise units during the "
                 "hold; keep the hand still and try again"

@@ -65,12 +65,15 @@ def store(tmp_path: Path) -> Store:
 
 
 def _snapshot(folder: Path) -> dict[str, bytes]:
-    return {str(p.relative_to(folder)): p.read_bytes() for p in sorted(folder.rglob("*")) if p.is_file()}
+    return {
+        str(p.relative_to(folder)): p.read_bytes() for p in sorted(folder.rglob("*")) if p.is_file()
+    }
 
 
 def _changed_lines(before: str, after: str) -> list[str]:
     return [
-        line for line in difflib.unified_diff(before.splitlines(), after.splitlines(), lineterm="", n=0)
+        line
+        for line in difflib.unified_diff(before.splitlines(), after.splitlines(), lineterm="", n=0)
         if line[:1] in "+-" and not line.startswith(("+++", "---"))
     ]
 
@@ -108,7 +111,9 @@ def test_example_saved_unchanged_is_not_rewritten(path: Path, tmp_path: Path) ->
 
 
 @pytest.mark.parametrize("path", EXAMPLE_FILES, ids=lambda p: p.name)
-def test_files_we_write_read_the_same_with_the_standard_toml_parser(path: Path, tmp_path: Path) -> None:
+def test_files_we_write_read_the_same_with_the_standard_toml_parser(
+    path: Path, tmp_path: Path
+) -> None:
     """A general-purpose reference parser (the standard library's tomllib, TOML 1.0.0)
     reads our fresh output to the same data as the example it came from."""
     tomllib = pytest.importorskip("tomllib")  # Python 3.11+
@@ -166,7 +171,9 @@ def test_example_calibrations_are_plausible_for_the_simulator(store: Store) -> N
 def test_offset_datetimes_follow_rfc3339(store: Store) -> None:
     # TOML 1.0.0 offset date-times are RFC 3339: 19:10 at +01:00 is 18:10 UTC [std: RFC 3339].
     venue = store.load_venue("ferry-shed")
-    assert venue.created.astimezone(timezone.utc) == datetime(2025, 6, 13, 18, 10, tzinfo=timezone.utc)
+    assert venue.created.astimezone(timezone.utc) == datetime(
+        2025, 6, 13, 18, 10, tzinfo=timezone.utc
+    )
     assert venue.created.utcoffset() == timedelta(hours=1)
 
 
@@ -202,7 +209,9 @@ def test_new_keys_go_inside_their_table_and_left_out_keys_stay_out(store: Store)
 
 def test_venue_rewrite_keeps_comments_and_notes(store: Store) -> None:
     path = store.venue_path("tin-lantern")
-    comments = [ln for ln in path.read_text(encoding="utf-8").splitlines() if ln.lstrip().startswith("#")]
+    comments = [
+        ln for ln in path.read_text(encoding="utf-8").splitlines() if ln.lstrip().startswith("#")
+    ]
     venue = store.load_venue("tin-lantern")
     venue.voices["lead"] = VoiceOverrides.model_validate({"pitch": {"span_semitones": 30}})
     venue.baseline = BaselineOverrides.model_validate({"threshold_sigma": 5})
@@ -252,7 +261,10 @@ def test_invalid_fields_are_named_one_line_each(store: Store) -> None:
     assert len(lines) == 4, lines
     assert all(line.startswith(f"{store.rig_path}: ") for line in lines)
     joined = "\n".join(lines)
-    assert "voices[0].pitch.span_semitones: Input should be less than or equal to 96 (found 120.0)" in joined
+    assert (
+        "voices[0].pitch.span_semitones: Input should be less than or equal to 96 (found 120.0)"
+        in joined
+    )
     assert "voices[0].pitch.span: unknown key; allowed here: lowest_note, span_semitones" in joined
     assert "outputs.midi.mode: Input should be 'slide', 'steps' or 'mpe' (found 'glide')" in joined
     assert "source.url: required, but missing" in joined
@@ -269,7 +281,9 @@ def test_rig_cross_checks_name_the_field(store: Store) -> None:
 
 def test_venue_override_checks_name_the_field(store: Store) -> None:
     path = store.venue_path("saltmarsh-chapel")
-    path.write_text(path.read_text(encoding="utf-8").replace('root = "A"', 'root = "H"'), encoding="utf-8")
+    path.write_text(
+        path.read_text(encoding="utf-8").replace('root = "A"', 'root = "H"'), encoding="utf-8"
+    )
     msg = _refused(path, load_venue)
     assert f"{path}: voices.lead.pitch.root: root must be one of" in msg
 
@@ -280,7 +294,7 @@ def test_venue_override_checks_name_the_field(store: Store) -> None:
         ("schema = 1 ", "schema = 2 ", "written by a newer fieldbridge"),
         ("schema = 1 ", "schema = 0 ", "older than this version"),
         ("schema = 1 ", "", "schema: missing"),
-        ('kind = "rig"', 'kind = "venue"', "this is a venue profile, expected a rig file"),
+        ('kind = "rig"', 'kind = "venue"', "kind: must be \"rig\" here (found 'venue')"),
     ],
 )
 def test_schema_and_kind_are_checked(store: Store, old: str, new: str, expected: str) -> None:
@@ -288,6 +302,25 @@ def test_schema_and_kind_are_checked(store: Store, old: str, new: str, expected:
     assert old in text
     store.rig_path.write_text(text.replace(old, new, 1), encoding="utf-8")
     assert expected in _refused(store.rig_path)
+
+
+def test_a_file_from_a_newer_version_is_not_overwritten(store: Store) -> None:
+    rig = store.load_rig()
+    text = store.rig_path.read_text(encoding="utf-8").replace("schema = 1 ", "schema = 2 ", 1)
+    store.rig_path.write_text(text, encoding="utf-8")
+    for keep in (True, False):
+        with pytest.raises(ConfigError, match="written by a newer fieldbridge"):
+            store.save_rig(rig, keep_comments=keep)
+    assert store.rig_path.read_text(encoding="utf-8") == text
+
+
+def test_an_unreadable_file_is_replaced_and_kept_as_backup(store: Store) -> None:
+    path = store.venue_path("tin-lantern")
+    venue = store.load_venue("tin-lantern")
+    path.write_bytes(b"schema = 1\n[broken")
+    assert store.save_venue("tin-lantern", venue) is True
+    assert store.load_venue("tin-lantern") == venue
+    assert backup_path(path).read_bytes() == b"schema = 1\n[broken"
 
 
 def test_invalid_value_assigned_in_code_is_not_saved(store: Store) -> None:
@@ -303,10 +336,33 @@ def test_invalid_value_assigned_in_code_is_not_saved(store: Store) -> None:
 
 
 HOSTILE = [
-    "../x", "../../etc/passwd", "/etc/passwd", "a/b", "a\\b", "C:\\temp\\x", "..", ".", "...",
-    ".hidden", "", "x" * (NAME_MAX + 1), "a\x00b", "a..b", "name with space", "tab\tname",
-    "new\nline", "caf\u00e9", "\u212aelvin", "-dash-first", "_under", "con", "NUL.txt", "lpt1",
-    "~user", "$HOME", "*",
+    "../x",
+    "../../etc/passwd",
+    "/etc/passwd",
+    "a/b",
+    "a\\b",
+    "C:\\temp\\x",
+    "..",
+    ".",
+    "...",
+    ".hidden",
+    "",
+    "x" * (NAME_MAX + 1),
+    "a\x00b",
+    "a..b",
+    "name with space",
+    "tab\tname",
+    "new\nline",
+    "caf\u00e9",
+    "\u212aelvin",
+    "-dash-first",
+    "_under",
+    "con",
+    "NUL.txt",
+    "lpt1",
+    "~user",
+    "$HOME",
+    "*",
 ]
 
 
@@ -334,8 +390,14 @@ def test_names_that_are_not_text_are_refused() -> None:
 
 @pytest.mark.parametrize(
     ("name", "folded"),
-    [("tin-lantern", "tin-lantern"), ("Tin-Lantern", "tin-lantern"), ("a", "a"),
-     ("v1.2_b", "v1.2_b"), ("9th-street", "9th-street"), ("x" * NAME_MAX, "x" * NAME_MAX)],
+    [
+        ("tin-lantern", "tin-lantern"),
+        ("Tin-Lantern", "tin-lantern"),
+        ("a", "a"),
+        ("v1.2_b", "v1.2_b"),
+        ("9th-street", "9th-street"),
+        ("x" * NAME_MAX, "x" * NAME_MAX),
+    ],
 )
 def test_safe_names_are_accepted_and_folded(name: str, folded: str) -> None:
     assert check_name(name) == folded
@@ -369,7 +431,9 @@ def test_store_root_lookup_order(tmp_path: Path) -> None:
     assert store_root(None, environ={ENV_HOME: "  "}) == user  # blank counts as unset
 
 
-def test_store_root_from_the_real_environment(monkeypatch: pytest.MonkeyPatch, store: Store) -> None:
+def test_store_root_from_the_real_environment(
+    monkeypatch: pytest.MonkeyPatch, store: Store
+) -> None:
     monkeypatch.setenv(ENV_HOME, str(store.root))
     located = Store.locate()
     assert located.root == store.root
@@ -399,7 +463,9 @@ def test_activate_persists_and_refuses_invalid_profiles(store: Store) -> None:
     assert store.active_path.read_bytes() == marker
 
     # a file that does not parse is refused the same way
-    store.venue_path("garbled").write_text("schema = 1\nkind = \"venue\"\n[channels\n", encoding="utf-8")
+    store.venue_path("garbled").write_text(
+        'schema = 1\nkind = "venue"\n[channels\n', encoding="utf-8"
+    )
     with pytest.raises(ConfigError, match="not valid TOML"):
         store.activate("garbled")
     with pytest.raises(ConfigError, match="no venue profile"):
@@ -419,13 +485,17 @@ def test_list_venues_summarises_each_profile(store: Store) -> None:
     assert rows["garbled"].problem and "not valid TOML" in rows["garbled"].problem
     assert rows["garbled"].quality.startswith("unusable")
     lantern = rows["tin-lantern"]
-    assert lantern.problem is None and lantern.created == datetime(2025, 2, 7, 18, 30, tzinfo=timezone.utc)
+    assert lantern.problem is None and lantern.created == datetime(
+        2025, 2, 7, 18, 30, tzinfo=timezone.utc
+    )
     # The figures are the calibration's own resolution report, with the voice's span.
     rig = store.load_rig()
     venue = store.load_venue("tin-lantern")
     span = rig.voices[0].pitch.span_semitones
-    rep = {ch: resolution_report(cal, window_s=rig.board.window_s, pitch_span_semitones=span)
-           for ch, cal in venue.channels.items()}
+    rep = {
+        ch: resolution_report(cal, window_s=rig.board.window_s, pitch_span_semitones=span)
+        for ch, cal in venue.channels.items()
+    }
     assert lantern.range_pct == pytest.approx(min(r.total_change_pct for r in rep.values()))
     assert lantern.worst_cents_per_count == pytest.approx(rep["pitch"].cents_per_count_far)
     assert "cents/tick" in lantern.quality and "range" in lantern.quality
@@ -433,6 +503,15 @@ def test_list_venues_summarises_each_profile(store: Store) -> None:
     chapel = rows["saltmarsh-chapel"]
     assert chapel.worst_cents_per_count is not None and lantern.worst_cents_per_count is not None
     assert chapel.worst_cents_per_count < lantern.worst_cents_per_count
+
+
+def test_listing_skips_odd_file_names_and_reports_links_out(store: Store, tmp_path: Path) -> None:
+    shutil.copy(store.venue_path("tin-lantern"), store.venues_dir / "Upper-Case.toml")
+    shutil.copy(store.venue_path("tin-lantern"), store.venues_dir / "with space.toml")
+    (store.venues_dir / "escape.toml").symlink_to(tmp_path / "elsewhere.toml")
+    rows = {s.name: s for s in store.list_venues()}
+    assert sorted(rows) == ["escape", "ferry-shed", "saltmarsh-chapel", "tin-lantern"]
+    assert rows["escape"].problem is not None and "outside" in rows["escape"].problem
 
 
 def test_compare_reports_field_paths(store: Store) -> None:
@@ -470,7 +549,9 @@ def tiny_store(tmp_path: Path) -> Iterator[Store]:
     mnt.mkdir()
     res = subprocess.run(
         ["mount", "-t", "tmpfs", "-o", "size=64k", f"fb{uuid.uuid4().hex[:8]}", str(mnt)],
-        capture_output=True, text=True,
+        capture_output=True,
+        text=True,
+        check=False,
     )
     if res.returncode != 0:
         pytest.skip(f"cannot mount a tmpfs here: {res.stderr.strip()}")
@@ -503,7 +584,10 @@ def test_full_disk_leaves_the_profile_and_active_marker_intact(tiny_store: Store
     after = _snapshot(store.root)
     after.pop("filler")
     assert after == before
-    assert store.load_venue("tin-lantern").notes == load_venue(EXAMPLES / "venues" / "tin-lantern.toml").notes
+    assert (
+        store.load_venue("tin-lantern").notes
+        == load_venue(EXAMPLES / "venues" / "tin-lantern.toml").notes
+    )
 
 
 # --- a soundcheck on the simulator, saved and played -----------------------------------------
@@ -524,4 +608,6 @@ def test_a_simulated_soundcheck_saves_and_reloads(store: Store) -> None:
     assert again.calibration().reference_base == cal.reference_base
     assert venue_problems(rig, again) == []
     # multi-line notes are written as a readable multi-line string
-    assert 'notes = """first night\nsecond line"""' in store.venue_path("new-room").read_text(encoding="utf-8")
+    assert 'notes = """first night\nsecond line"""' in store.venue_path("new-room").read_text(
+        encoding="utf-8"
+    )

@@ -18,7 +18,8 @@ import abc
 import importlib
 import logging
 from types import TracebackType
-from typing import Any, TypeVar
+from collections.abc import Callable
+from typing import Any, TypeVar, cast
 
 from bridge.errors import ConfigError
 
@@ -112,7 +113,8 @@ def make_sink(kind: str, settings: Any, **kwargs: Any) -> Sink:
     Extra keyword arguments go to the implementation's constructor (for example
     ``ports=[...]`` to hand a MIDI sink ports that are already open).
     """
-    return sink_class(kind)(settings, **kwargs)
+    factory = cast("Callable[..., Sink]", sink_class(kind))
+    return factory(settings, **kwargs)
 
 
 __all__ = ["SINKS", "Sink", "make_sink", "sink_class"]

@@ -419,7 +419,7 @@ class MidiVoice:
             return out
         offset = target - self.note
         if self._slide:
-            if abs(offset) > self._move_at:
+            if abs(offset) > self._move_at and round(target) != self.note:
                 self._note_on(out, round(target), target, value, level, t, self.note)
                 return out
             if self._bend.offer(bend_value(offset, self.range), t):

@@ -24,30 +24,21 @@ from typing import IO
 
 import pytest
 
-try:  # the shared helper; the fallback below behaves the same
-    from .peers import require  # type: ignore[import-not-found]
+try:  # tests/e2e/peers.py: skip when a program is absent, fail under CI's flag
+    from .peers import require
 except ImportError:
-    try:
-        from peers import require  # type: ignore[import-not-found,no-redef]
-    except ImportError:
-        import shutil
-
-        def require(program: str) -> str:  # type: ignore[misc]
-            """Path of ``program``; skip the test when it is absent (fail under CI's flag)."""
-            path = shutil.which(program)
-            if path:
-                return path
-            reason = f"peer program {program!r} is not installed (PATH has no {program})"
-            if os.environ.get("FIELDBRIDGE_REQUIRE_PEERS") == "1":
-                pytest.fail(f"{reason}; FIELDBRIDGE_REQUIRE_PEERS=1 forbids skipping")
-            pytest.skip(reason)
+    from peers import require  # type: ignore[no-redef]
 
 
-def _stop(proc: subprocess.Popen[bytes] | subprocess.Popen[str], timeout: float = 5.0) -> None:
-    """End a process we started: SIGTERM, then SIGKILL if it lingers."""
+def _stop(
+    proc: subprocess.Popen[bytes] | subprocess.Popen[str],
+    timeout: float = 5.0,
+    sig: int = signal.SIGTERM,
+) -> None:
+    """End a process we started: ``sig``, then SIGKILL if it lingers."""
     if proc.poll() is not None:
         return
-    proc.send_signal(signal.SIGTERM)
+    proc.send_signal(sig)
     try:
         proc.wait(timeout)
     except subprocess.TimeoutExpired:
@@ -73,7 +64,7 @@ class JackServer:
     def run(self, *args: str, timeout: float = 10.0) -> subprocess.CompletedProcess[str]:
         """Run a JACK command-line client (jack_connect, jack_lsp, ...) against this server."""
         return subprocess.run(
-            list(args), env=self.env, capture_output=True, text=True, timeout=timeout
+            list(args), env=self.env, capture_output=True, text=True, timeout=timeout, check=False
         )
 
     def ports(self) -> list[str]:
@@ -117,7 +108,8 @@ SERVER_NAMES = [f"fbtest{k}" for k in range(6)]
 def _running(name: str) -> bool:
     env = dict(os.environ, JACK_DEFAULT_SERVER=name, JACK_NO_START_SERVER="1")
     done = subprocess.run(
-        [require("jack_wait"), "-c"], env=env, capture_output=True, text=True, timeout=10
+        [require("jack_wait"), "-c"], env=env, capture_output=True, text=True, timeout=10,
+        check=False,
     )
     return done.stdout.strip() == "running"
 
@@ -235,8 +227,10 @@ class MidiDump:
             return extra
 
     def stop(self) -> None:
+        # SIGINT: jack_midi_dump closes its client cleanly. On SIGTERM it just dies and
+        # the server waits 5 s before giving up on it.
         if self.proc is not None:
-            _stop(self.proc)
+            _stop(self.proc, sig=signal.SIGINT)
 
 
 @pytest.fixture

@@ -13,9 +13,9 @@ from dataclasses import dataclass, field
 import pytest
 
 try:
-    from .jack import JackServer, MidiDump, jack_server, midi_dump, require  # noqa: F401
+    from .jack import JackServer, MidiDump, jack_server, midi_dump, require
 except ImportError:
-    from jack import JackServer, MidiDump, jack_server, midi_dump, require  # type: ignore[no-redef]  # noqa: F401
+    from jack import JackServer, MidiDump, jack_server, midi_dump, require  # type: ignore[no-redef]
 
 from bridge.errors import DeviceError
 from bridge.outputs.midi import MidiSettings, MidiSink
@@ -51,8 +51,12 @@ def h(text: str) -> list[bytes]:
 SCRIPT: list[tuple[float, float, float, str]] = [
     # The first note repeats RPN 0 (a synth connected after start missed it), then
     # level 0.25 -> sqrt law 0.5 -> 8192 of 16383 = MSB 0x40, LSB 0x00; velocity round(127*0.5)=64.
-    (0.00, 69.0, 0.25, "B0 65 00, B0 64 00, B0 06 0C, B0 26 00, B0 65 7F, B0 64 7F,"
-     " B0 0B 40, B0 2B 00, 90 45 40"),
+    (
+        0.00,
+        69.0,
+        0.25,
+        "B0 65 00, B0 64 00, B0 06 0C, B0 26 00, B0 65 7F, B0 64 7F, B0 0B 40, B0 2B 00, 90 45 40",
+    ),
     # +6 semitones on key 69 at R=12: 8192 + 4096 = 12288 = E0 00 60.
     (0.01, 75.0, 0.25, "E0 00 60"),
     # -3 semitones: 8192 - 2048 = 6144 = LSB 0x00, MSB 0x30.
@@ -77,17 +81,17 @@ START = (
 
 
 def settings(**kw: object) -> MidiSettings:
-    base: dict[str, object] = dict(
-        api="jack",
-        client_name=f"fbmidi{os.getpid()}",
-        port_name="out",
-        mode="slide",
-        bend_range=12,
-        level_out="cc14",
-        controller=11,
-        ramp_s=0.0,
-        max_rate_hz=1e6,
-    )
+    base: dict[str, object] = {
+        "api": "jack",
+        "client_name": f"fbmidi{os.getpid()}",
+        "port_name": "out",
+        "mode": "slide",
+        "bend_range": 12,
+        "level_out": "cc14",
+        "controller": 11,
+        "ramp_s": 0.0,
+        "max_rate_hz": 1e6,
+    }
     base.update(kw)
     return MidiSettings(**base)  # type: ignore[arg-type]
 
