@@ -162,6 +162,7 @@ def cmd_run(args: argparse.Namespace) -> int:
             sinks,
             loader=lambda name: setup_for(store_for(args), name),
             control_path=control,
+            osc_control=rig.control.osc_listen if rig.control else None,
             notifier=notifier,
             run_for_s=args.seconds,
             on_second=(lambda d: print(d.live_line(), flush=True)) if args.show else None,

@@ -314,3 +314,64 @@ class ControlClient:
                 yield json.loads(line)
         finally:
             s.close()
+
+
+class OscControl:
+    """Optional OSC control input: ``<prefix>/control/activate s:NAME`` and
+    ``<prefix>/control/rebase``, e.g. from a phone controller app on the same network.
+
+    It listens on 127.0.0.1 unless the rig names another address; anything that reaches
+    it can switch venues, so open it to a network only where that network is trusted.
+    Requests go through the same ``submit`` path (and validation) as the Unix socket.
+    """
+
+    def __init__(self, listen: str, submit: Handler, prefix: str = "/fieldbridge") -> None:
+        from .outputs.osc import parse_destination
+
+        self.host, self.port = parse_destination(listen)
+        self._submit = submit
+        self.prefix = prefix
+        self._server: Any = None
+        self._thread: threading.Thread | None = None
+        self.handled = 0
+
+    def start(self) -> None:
+        from pythonosc.dispatcher import Dispatcher
+        from pythonosc.osc_server import BlockingOSCUDPServer
+
+        d = Dispatcher()
+        d.map(f"{self.prefix}/control/activate", self._activate)
+        d.map(f"{self.prefix}/control/rebase", self._rebase)
+        d.set_default_handler(lambda addr, *a: log.debug("OSC control: ignored %s", addr))
+        self._server = BlockingOSCUDPServer((self.host, self.port), d)
+        self.port = self._server.server_address[1]
+        self._thread = threading.Thread(target=self._server.serve_forever, name="osc-control",
+                                        kwargs={"poll_interval": 0.2}, daemon=True)
+        self._thread.start()
+        log.info("OSC control input on %s:%d", self.host, self.port)
+
+    def stop(self) -> None:
+        if self._server is not None:
+            self._server.shutdown()
+            self._server.server_close()
+            self._server = None
+
+    def _handle(self, obj: dict[str, Any]) -> None:
+        try:
+            req = parse_request(json.dumps(obj).encode())
+        except ControlError as e:
+            log.warning("OSC control request refused: %s", e)
+            return
+        reply = self._submit(req)
+        self.handled += 1
+        if not reply.get("ok"):
+            log.warning("OSC control %s refused: %s", obj["op"], reply.get("error"))
+
+    def _activate(self, _addr: str, *args: Any) -> None:
+        if len(args) != 1 or not isinstance(args[0], str):
+            log.warning("OSC control: activate needs one string argument (a venue name)")
+            return
+        self._handle({"op": "activate", "name": args[0]})
+
+    def _rebase(self, _addr: str, *args: Any) -> None:
+        self._handle({"op": "rebase"})

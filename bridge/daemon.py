@@ -30,7 +30,7 @@ from dataclasses import dataclass, field
 from typing import Any
 
 from .baseline import BaselineSettings
-from .control import Activate, ControlServer, Rebase, Reload, Status
+from .control import Activate, ControlServer, OscControl, Rebase, Reload, Status
 from .errors import BridgeError
 from .frames import FrameSettings, make_decoder
 from .mapping import note_name
@@ -95,6 +95,7 @@ class Daemon:
         *,
         loader: Loader | None = None,
         control_path: Any = None,
+        osc_control: str | None = None,
         notifier: Notifier | None = None,
         on_second: Callable[[Daemon], None] | None = None,
         run_for_s: float | None = None,
@@ -103,6 +104,8 @@ class Daemon:
         self.sinks = list(sinks)
         self.loader = loader
         self.control_path = control_path
+        self.osc_control_listen = osc_control
+        self.osc_control: OscControl | None = None
         self.notifier = notifier or Notifier.from_env()
         self.on_second = on_second
         self.run_for_s = run_for_s
@@ -173,6 +176,9 @@ class Daemon:
         if self.control_path is not None:
             self.control = ControlServer(self.control_path, self.submit)
             self.control.start()
+        if self.osc_control_listen:
+            self.osc_control = OscControl(self.osc_control_listen, self.submit)
+            self.osc_control.start()
         gc.collect()
         gc.freeze()  # start-up objects never need scanning again
         self.notifier.ready(self._status_text())
@@ -209,7 +215,7 @@ class Daemon:
                         except Exception:  # a failing output must not stop the others
                             self._sink_failed(sink)
                     if watch is not None and watch.watching:
-                        watch.publish(reading.frame, self._line_maker(reading, frame.values))
+                        watch.publish(reading.frame, self._line_maker(reading, frame))
                     self.counters.frames += 1
                     if not self._requests.empty():
                         self._serve_requests()  # a switch lands before the next frame
@@ -240,6 +246,8 @@ class Daemon:
                 log.exception("closing %s failed", sink.kind)
         if self.control is not None:
             self.control.stop()
+        if self.osc_control is not None:
+            self.osc_control.stop()
         if self.source is not None:
             self.source.close()
         gc.unfreeze()
@@ -318,10 +326,11 @@ class Daemon:
         self.notifier.ready(self._status_text())
         return {"ok": True, "profile": setup.profile, "frame": self.counters.frames}
 
-    def _line_maker(self, reading: Any, values: Sequence[int]) -> Callable[[bool], bytes]:
+    def _line_maker(self, reading: Any, frame: Any) -> Callable[[bool], bytes]:
         def make(raw: bool) -> bytes:
             if raw:
-                obj: dict[str, Any] = {"frame": reading.frame, "raw": list(values)}
+                obj: dict[str, Any] = {"frame": reading.frame, "seq": frame.seq,
+                                       "raw": list(frame.values)}
             else:
                 obj = reading.as_dict()
                 obj["profile"] = self.setup.profile

@@ -72,6 +72,7 @@ from pydantic import (
     StringConstraints,
     ValidationError,
     create_model,
+    field_validator,
     model_validator,
 )
 
@@ -165,6 +166,20 @@ class ControlSettings(_Model):
     socket: str | None = Field(
         default=None, description="socket path; unset: control.sock in the per-user runtime folder"
     )
+    osc_listen: str | None = Field(
+        default=None,
+        description="host:port for OSC control messages (activate, rebase) from a phone or "
+        "controller; 127.0.0.1 keeps it on this computer. Unset: off",
+    )
+
+    @field_validator("osc_listen")
+    @classmethod
+    def _listen_address(cls, v: str | None) -> str | None:
+        if v is not None:
+            from .outputs.osc import parse_destination
+
+            parse_destination(v)
+        return v
 
 
 class OutputSettings(_Model):

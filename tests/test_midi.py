@@ -9,6 +9,7 @@ import math
 import subprocess
 import sys
 import threading
+from dataclasses import dataclass, field
 
 import mido
 import pytest
@@ -37,7 +38,7 @@ from bridge.pipeline import Reading, VoiceView
 
 
 def h(text: str) -> list[bytes]:
-    """'B0 65 00 B0 64 00' -> [b'\\xb0\\x65\\x00', b'\\xb0\\x64\\x00'] (messages split on status)."""
+    """'B0 65 00 B0 64 00' -> [b'\\xb0\\x65\\x00', b'\\xb0\\x64\\x00'] (split at status bytes)."""
     raw = bytes.fromhex(text)
     out: list[bytearray] = []
     for b in raw:
@@ -91,7 +92,9 @@ def test_controller_numbers() -> None:
 def test_rpn0_twelve_semitones_channel_1() -> None:
     # MIDI 1.0 Detailed Specification, RPN 0 pitch-bend sensitivity, then RPN null
     # (DOMAIN.md section 6 check value).
-    assert hx(rpn(0, "bend_range", 12, 0)) == "B0 65 00 B0 64 00 B0 06 0C B0 26 00 B0 65 7F B0 64 7F"
+    assert (
+        hx(rpn(0, "bend_range", 12, 0)) == "B0 65 00 B0 64 00 B0 06 0C B0 26 00 B0 65 7F B0 64 7F"
+    )
 
 
 def test_start_sends_rpn0_with_the_configured_range() -> None:
@@ -189,7 +192,9 @@ def test_mpe_move_uses_a_new_channel_and_sets_its_bend_first() -> None:
 
 
 def test_mpe_timbre_can_follow_the_level() -> None:
-    v = voice(mode="mpe", mpe_members=2, level_out="pressure", mpe_timbre="level", level_law="linear")
+    v = voice(
+        mode="mpe", mpe_members=2, level_out="pressure", mpe_timbre="level", level_law="linear"
+    )
     v.start()
     v.update(60.0, 0.5, True, 0.0)
     out = v.update(60.0, 1.0, True, 0.01)
@@ -397,7 +402,9 @@ def test_rate_cap_coalesces_to_the_latest_value() -> None:
     assert v.flush(0.05) == []
     v.update(64.0, 0.5, True, 0.052)
     v.update(65.0, 0.5, True, 0.053)  # pending: +5
-    assert bends_of(v.update(65.0, 0.5, True, 0.07)) == [bend_value(5, 12)]  # a later update sends it
+    assert bends_of(v.update(65.0, 0.5, True, 0.07)) == [
+        bend_value(5, 12)
+    ]  # a later update sends it
     # a value that returns to the one already sent is not repeated
     v.update(66.0, 0.5, True, 0.071)
     assert v.update(65.0, 0.5, True, 0.072) == []
@@ -436,7 +443,9 @@ def test_din_budget_holds_in_play() -> None:
     sent = 0
     for i in range(2000):  # 2 s of wild input at 1 kHz
         t = i * 0.001
-        sent += len(v.update(60.0 + 5 * math.sin(i * 0.37), 0.2 + 0.7 * abs(math.sin(i * 0.11)), True, t))
+        sent += len(
+            v.update(60.0 + 5 * math.sin(i * 0.37), 0.2 + 0.7 * abs(math.sin(i * 0.11)), True, t)
+        )
     assert sent / 2.0 <= DIN_MESSAGES_PER_S * 0.75 * 1.02  # within the share (+ rounding)
 
 
@@ -459,11 +468,19 @@ ops = st.lists(
 )
 
 
-def receiver(msgs: list[bytes], bend_range: float) -> dict[str, object]:
-    """A receiver's view after ``msgs``: sounding notes, bend per channel, last level."""
-    held: set[tuple[int, int]] = set()
-    bends: dict[int, int] = {}
-    level: dict[int, int] = {}
+@dataclass
+class Heard:
+    """A receiver's view: sounding (channel, key) pairs, bend and level per channel."""
+
+    held: set[tuple[int, int]] = field(default_factory=set)
+    bends: dict[int, int] = field(default_factory=dict)
+    level: dict[int, int] = field(default_factory=dict)
+
+
+def receiver(msgs: list[bytes]) -> Heard:
+    """What a receiver holds after ``msgs`` (MIDI 1.0: note-on velocity 0 is a note-off)."""
+    heard = Heard()
+    held, bends, level = heard.held, heard.bends, heard.level
     for m in msgs:
         kind, ch = m[0] >> 4, m[0] & 0xF
         if kind == 0x9 and m[2] > 0:
@@ -475,7 +492,7 @@ def receiver(msgs: list[bytes], bend_range: float) -> dict[str, object]:
             bends[ch] = m[1] | m[2] << 7
         elif kind == 0xB and m[1] in (7, 11):
             level[ch] = m[2]
-    return {"held": held, "bends": bends, "level": level}
+    return heard
 
 
 @settings(max_examples=250, deadline=None)
@@ -527,17 +544,17 @@ def test_no_stuck_notes_and_all_values_in_range(
             else:
                 sent += v.flush(t + float(op[1]))  # type: ignore[arg-type]
         # one sounding note per voice at most, between calls
-        assert len(receiver(sent, bend_range)["held"]) <= voices  # type: ignore[arg-type]
+        assert len(receiver(sent).held) <= voices
     for v in vs:
         sent += v.stop()
     for m in sent:
         assert m[0] & 0x80 and all(b < 0x80 for b in m[1:]), hx([m])
         msg = mido.Message.from_bytes(m)  # mido validates every field's range
         assert len(m) == MESSAGES[msg.type].size
-    state = receiver(sent, bend_range)
-    assert state["held"] == set()  # MIDI 1.0: every note-on matched by a note-off
+    state = receiver(sent)
+    assert state.held == set()  # MIDI 1.0: every note-on matched by a note-off
     if mode != "mpe" and level_out in ("cc7", "cc14"):
-        assert set(state["level"].values()) <= {0}  # type: ignore[union-attr]
+        assert set(state.level.values()) <= {0}
     assert sent[-1][1:] == bytes((123, 0))  # the last message is All Notes Off
 
 
@@ -547,16 +564,18 @@ def test_no_stuck_notes_and_all_values_in_range(
     bend_range=st.sampled_from([1, 2, 12, 24]),
     margin=st.sampled_from([0.0, 0.25, 0.5]),
 )
-def test_slide_sounding_pitch_equals_target(targets: list[float], bend_range: int, margin: float) -> None:
+def test_slide_sounding_pitch_equals_target(
+    targets: list[float], bend_range: int, margin: float
+) -> None:
     if margin >= bend_range:
         margin = 0.0
     v = voice(bend_range=bend_range, move_margin=margin)
     sent = v.start()
     for i, x in enumerate(targets):
         sent += v.update(x, 0.5, True, i * 0.01)
-        st_ = receiver(sent, bend_range)
-        ((ch, key),) = st_["held"]  # type: ignore[misc]
-        bend = st_["bends"][ch]  # type: ignore[index]
+        heard = receiver(sent)
+        ((ch, key),) = heard.held
+        bend = heard.bends[ch]
         sounding = key + (bend - 8192) / 8192 * bend_range
         # one bend step of tolerance (the top value is 16383, not 16384)
         assert sounding == pytest.approx(x, abs=bend_range / 8192 * 1.01)
@@ -720,7 +739,9 @@ def test_match_port(wanted: str, found: str) -> None:
 def test_match_port_ambiguous_or_missing() -> None:
     with pytest.raises(DeviceError, match="ambiguous.*MIDI 1 24:0.*MIDI 2 24:1"):
         match_port("Stage Synth", ALSA_NAMES)
-    with pytest.raises(DeviceError, match="no MIDI port called 'nothing'; ports available: Midi Through"):
+    with pytest.raises(
+        DeviceError, match="no MIDI port called 'nothing'; ports available: Midi Through"
+    ):
         match_port("nothing", ALSA_NAMES)
     with pytest.raises(DeviceError, match="ports available: none"):
         match_port("x", [])

@@ -69,7 +69,9 @@ def test_times_within_a_tick_of_the_given_times(tmp_path: Path) -> None:
     bpm=st.sampled_from([60.0, 90.0, 120.0, 133.0]),
     tpb=st.sampled_from([96, 480, 960]),
 )
-def test_timing_any_tempo(tmp_path_factory: pytest.TempPathFactory, gaps: list[float], bpm: float, tpb: int) -> None:
+def test_timing_any_tempo(
+    tmp_path_factory: pytest.TempPathFactory, gaps: list[float], bpm: float, tpb: int
+) -> None:
     path = tmp_path_factory.mktemp("smf") / "t.mid"
     rec = MidiFileRecorder(path, tempo_bpm=bpm, ticks_per_beat=tpb, t0=0.0)
     t = 0.0

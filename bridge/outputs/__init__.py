@@ -5,7 +5,7 @@ Every output is a :class:`Sink` with the same five verbs::
     sink = make_sink("midi", settings)   # nothing opened yet
     with sink:                            # __enter__ opens, __exit__ closes
         sink.send(reading)                # once per frame
-        sink.silence("sensor lost")       # end every note, level to zero; any time, any number of times
+        sink.silence("sensor lost")       # end every note, level 0; any time, any number of times
     # close(): silence, then release; safe to call twice
 
 Implementations are named in one table and imported only when first used, so a
@@ -17,8 +17,8 @@ from __future__ import annotations
 import abc
 import importlib
 import logging
-from types import TracebackType
 from collections.abc import Callable
+from types import TracebackType
 from typing import Any, TypeVar, cast
 
 from bridge.errors import ConfigError

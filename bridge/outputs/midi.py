@@ -154,59 +154,91 @@ class MidiSettings(BaseModel):
 
     # -- where the bytes go (see bridge.outputs.midiports) --
     api: Literal["alsa", "jack"] = "alsa"
-    virtual: bool = Field(True, description="create our own port client_name:port_name")
-    client_name: str = Field("fieldbridge", min_length=1)
-    port_name: str = Field("out", min_length=1)
+    virtual: bool = Field(default=True, description="create our own port client_name:port_name")
+    client_name: str = Field(default="fieldbridge", min_length=1)
+    port_name: str = Field(default="out", min_length=1)
     connect: list[str] = Field(
         default_factory=list,
         description="existing ports to send to; ALSA's trailing 'client:port' numbers optional",
     )
     close_wait_s: float = Field(
-        0.1, ge=0.0, le=5.0, description="JACK: time for the last note-offs to leave before closing"
+        default=0.1,
+        ge=0.0,
+        le=5.0,
+        description="JACK: time for the last note-offs to leave before the port closes",
     )
 
     # -- what is played --
     mode: Literal["slide", "steps", "mpe"] = "slide"
-    channel: int = Field(1, ge=1, le=16, description="channel of the first voice; voice i uses channel+i")
-    program: int | None = Field(None, ge=0, le=127, description="program change sent at start")
-    bend_range: int = Field(12, ge=1, le=96, description="semitones; sent as RPN 0 at start")
-    move_margin: float = Field(
-        0.5, ge=0.0, description="slide/mpe: move the held note when the bend is this close to the range end"
+    channel: int = Field(
+        default=1, ge=1, le=16, description="channel of the first voice; voice i uses channel+i"
     )
-    step_hysteresis_cents: float = Field(20.0, ge=0.0, le=49.0)
+    program: int | None = Field(
+        default=None, ge=0, le=127, description="program change sent at start"
+    )
+    bend_range: int = Field(
+        default=12, ge=1, le=96, description="semitones; sent as RPN 0 at start"
+    )
+    move_margin: float = Field(
+        default=0.5,
+        ge=0.0,
+        description="slide/mpe: move the held note when the bend is this close to the range end",
+    )
+    step_hysteresis_cents: float = Field(default=20.0, ge=0.0, le=49.0)
 
     # -- level --
     level_out: Literal["cc7", "cc14", "pressure", "velocity-only"] = "cc7"
-    controller: int = Field(11, ge=0, le=119, description="7 volume, 11 expression; cc14 adds n+32")
-    level_law: Literal["sqrt", "linear"] = Field(
-        "sqrt", description="sqrt: value = full*sqrt(gain), right for a 40*log10(v/127) dB volume response"
+    controller: int = Field(
+        default=11, ge=0, le=119, description="7 volume, 11 expression; cc14 adds n+32"
     )
-    level_ceiling: float = Field(1.0, ge=0.0, le=1.0)
-    ramp_s: float = Field(1.0, ge=0.0, description="fade-in time after start and after silence")
-    on_level: float = Field(0.003, ge=0.0, le=1.0, description="note on when level rises above this")
-    off_level: float = Field(0.001, ge=0.0, le=1.0, description="note off when level falls to this")
+    level_law: Literal["sqrt", "linear"] = Field(
+        default="sqrt",
+        description="sqrt: value = full*sqrt(gain), right for a 40*log10(v/127) dB volume response",
+    )
+    level_ceiling: float = Field(default=1.0, ge=0.0, le=1.0)
+    ramp_s: float = Field(
+        default=1.0, ge=0.0, description="fade-in time after start and after silence"
+    )
+    on_level: float = Field(
+        default=0.003, ge=0.0, le=1.0, description="note on when level rises above this"
+    )
+    off_level: float = Field(
+        default=0.001, ge=0.0, le=1.0, description="note off when level falls to this"
+    )
     off_when_absent: bool = True
-    velocity: int | None = Field(None, ge=1, le=127, description="fixed note-on velocity; None: from level")
+    velocity: int | None = Field(
+        default=None, ge=1, le=127, description="fixed note-on velocity; None: from level"
+    )
 
     # -- traffic --
-    max_rate_hz: float = Field(500.0, gt=0.0, description="per continuous stream (bend, level, timbre)")
+    max_rate_hz: float = Field(
+        default=500.0, gt=0.0, description="per continuous stream (bend, level, timbre)"
+    )
     setup_refresh_s: float | None = Field(
-        5.0,
+        default=5.0,
         gt=0.0,
         description="repeat the bend range (RPN 0) before a new note when this long since the last",
     )
-    din_link: bool = Field(False, description="share the ~1042 messages/s of a 31,250-baud DIN link")
-    din_reserve: float = Field(0.25, ge=0.0, lt=1.0, description="part of the DIN budget kept for notes")
+    din_link: bool = Field(
+        default=False, description="share the ~1042 messages/s of a 31,250-baud DIN link"
+    )
+    din_reserve: float = Field(
+        default=0.25, ge=0.0, lt=1.0, description="part of the DIN budget kept for notes"
+    )
 
     # -- MPE (lower zone) --
-    mpe_members: int = Field(15, ge=1, le=15)
-    mpe_bend_range: int = Field(48, ge=1, le=96)
-    mpe_timbre: int | Literal["level"] = Field(64, description="CC74 value at note on, or follow the level")
+    mpe_members: int = Field(default=15, ge=1, le=15)
+    mpe_bend_range: int = Field(default=48, ge=1, le=96)
+    mpe_timbre: int | Literal["level"] = Field(
+        default=64, description="CC74 value at note on, or follow the level"
+    )
 
     @model_validator(mode="after")
     def _consistent(self) -> MidiSettings:
         if self.off_level > self.on_level:
-            raise ValueError(f"off_level {self.off_level} must not be above on_level {self.on_level}")
+            raise ValueError(
+                f"off_level {self.off_level} must not be above on_level {self.on_level}"
+            )
         if self.level_out == "cc14" and self.controller > 31:
             raise ValueError("cc14 needs a controller 0-31 (its LSB is controller + 32)")
         if isinstance(self.mpe_timbre, int) and not 0 <= self.mpe_timbre <= 127:
@@ -244,7 +276,7 @@ def stream_rate(settings: MidiSettings, voices: int = 1) -> float:
 class _Stream:
     """One continuous value (bend, level, timbre): send changes only, at most one per interval.
 
-    A value that arrives too soon is held as ``pending``; the next offer (or :meth:`due`)
+    A value that arrives too soon is held as ``pending``; the next offer (or :meth:`MidiVoice.flush`)
     after the interval sends the latest value, so the receiver always ends on it.
     """
 
@@ -486,14 +518,17 @@ class MidiVoice:
                 self._level.forget()
                 self._timbre.forget()
         self.note_channel = ch
+        # A synth connected after start (a patchbay, a restarted synth, a JACK connection
+        # that took effect a cycle late) missed the set-up: repeat the bend range before
+        # the first note and then at most every `setup_refresh_s` seconds.
         refresh = self.s.setup_refresh_s
-        if old is None and refresh is not None:
-            # A synth connected after start (a patchbay, a restarted synth, a JACK
-            # connection that took effect a cycle late) missed the set-up; repeat the
-            # bend range before the first note and then at most every `refresh` seconds.
-            if self._setup_t is None or not 0.0 <= t - self._setup_t < refresh:
-                out += rpn(ch, "bend_range", int(self.range), 0)
-                self._setup_t = t
+        if (
+            old is None
+            and refresh is not None
+            and (self._setup_t is None or not 0.0 <= t - self._setup_t < refresh)
+        ):
+            out += rpn(ch, "bend_range", int(self.range), 0)
+            self._setup_t = t
         if self._level_on:
             prev = self._level.sent
             if self._level.force(value, t):
@@ -610,7 +645,9 @@ class MidiSink(Sink):
 
     def send(self, reading: Any) -> None:
         if not self._opened or self._closed:
-            raise DeviceError("MIDI output is not open: call open() first (or use it in a with block)")
+            raise DeviceError(
+                "MIDI output is not open: call open() first (or use it in a with block)"
+            )
         voices = reading.voices
         t = reading.t
         self._last_t = t

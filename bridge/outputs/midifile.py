@@ -128,8 +128,8 @@ class MidiFileSettings(MidiSettings):
     """MIDI output settings plus where and how to write the file (port fields unused)."""
 
     path: Path
-    tempo_bpm: float = Field(120.0, gt=0.0)
-    ticks_per_beat: int = Field(960, ge=24, le=32767)
+    tempo_bpm: float = Field(default=120.0, gt=0.0)
+    ticks_per_beat: int = Field(default=960, ge=24, le=32767)
 
 
 class MidiFileSink(MidiSink):

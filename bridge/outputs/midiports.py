@@ -146,7 +146,9 @@ def _backend(api: str) -> Any:
     try:
         return mido.Backend(BACKENDS[api], load=True)
     except KeyError:
-        raise ConfigError(f"unknown MIDI api {api!r}; choose one of: {', '.join(BACKENDS)}") from None
+        raise ConfigError(
+            f"unknown MIDI api {api!r}; choose one of: {', '.join(BACKENDS)}"
+        ) from None
 
 
 def _system_error(api: str, exc: BaseException) -> DeviceError:

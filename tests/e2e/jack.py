@@ -108,7 +108,11 @@ SERVER_NAMES = [f"fbtest{k}" for k in range(6)]
 def _running(name: str) -> bool:
     env = dict(os.environ, JACK_DEFAULT_SERVER=name, JACK_NO_START_SERVER="1")
     done = subprocess.run(
-        [require("jack_wait"), "-c"], env=env, capture_output=True, text=True, timeout=10,
+        [require("jack_wait"), "-c"],
+        env=env,
+        capture_output=True,
+        text=True,
+        timeout=10,
         check=False,
     )
     return done.stdout.strip() == "running"
@@ -123,7 +127,7 @@ def start_jack(timeout: float = 15.0) -> JackServer:
             continue
         env = dict(os.environ, JACK_DEFAULT_SERVER=name, JACK_NO_START_SERVER="1")
         # jackd's log goes to a file: an unread pipe would fill up and stall the server.
-        log = tempfile.TemporaryFile()
+        log = tempfile.TemporaryFile()  # noqa: SIM115 - kept open as long as the server
         proc = subprocess.Popen(
             [jackd, "--no-realtime", "-d", "dummy", "-r", "48000", "-p", "256"],
             env=env,
@@ -132,9 +136,7 @@ def start_jack(timeout: float = 15.0) -> JackServer:
         )
         server = JackServer(name, proc, env, log)
         # jack_wait -w blocks until the server answers (or its timeout passes).
-        ready = server.run(
-            require("jack_wait"), "-w", "-t", str(int(timeout)), timeout=timeout + 5
-        )
+        ready = server.run(require("jack_wait"), "-w", "-t", str(int(timeout)), timeout=timeout + 5)
         if ready.returncode == 0 and proc.poll() is None:
             return server
         # Lost a race for the name, or jackd failed: note why and try the next name.
@@ -213,7 +215,8 @@ class MidiDump:
                 got.append(self.events.get(timeout=max(0.0, left)))
             except queue.Empty:
                 raise AssertionError(
-                    f"jack_midi_dump gave {len(got)} of {count} events; got {[g.hex(' ') for g in got]}"
+                    f"jack_midi_dump gave {len(got)} of {count} events; "
+                    f"got {[g.hex(' ') for g in got]}"
                 ) from None
         return got
 

@@ -12,10 +12,17 @@ from dataclasses import dataclass, field
 
 import pytest
 
+# jack_server and midi_dump are fixtures: importing them here makes pytest see them.
 try:
-    from .jack import JackServer, MidiDump, jack_server, midi_dump, require
+    from .jack import JackServer, MidiDump, jack_server, midi_dump, require  # noqa: F401
 except ImportError:
-    from jack import JackServer, MidiDump, jack_server, midi_dump, require  # type: ignore[no-redef]
+    from jack import (  # type: ignore[no-redef]  # noqa: F401
+        JackServer,
+        MidiDump,
+        jack_server,
+        midi_dump,
+        require,
+    )
 
 from bridge.errors import DeviceError
 from bridge.outputs.midi import MidiSettings, MidiSink
@@ -135,7 +142,9 @@ def test_virtual_port_carries_setup_notes_bends_and_controllers(
     assert sink.counts["note_on"] == 3 and sink.counts["note_off"] == 3
 
 
-def test_named_port_is_found_without_full_name(jack_server: JackServer, midi_dump: MidiDump) -> None:
+def test_named_port_is_found_without_full_name(
+    jack_server: JackServer, midi_dump: MidiDump
+) -> None:
     # The client name alone ("midi-monitor-xxxxxx" for "midi-monitor-xxxxxx:input"): the
     # matcher finds the port and rtmidi connects our output to it, no jack_connect needed.
     s = settings(virtual=False, connect=[midi_dump.client], client_name=f"fbnamed{os.getpid()}")

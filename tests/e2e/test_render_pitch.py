@@ -109,7 +109,20 @@ def test_rendered_pitch_matches_intended_pitch(tmp_path: Path) -> None:
 
     # -R 0 -C 0: no reverb or chorus, so each segment is one clean pitch.
     render = subprocess.run(
-        [fluidsynth, "-ni", "-R", "0", "-C", "0", "-F", str(wav), "-r", "44100", str(sf2), str(mid)],
+        [
+            fluidsynth,
+            "-ni",
+            "-R",
+            "0",
+            "-C",
+            "0",
+            "-F",
+            str(wav),
+            "-r",
+            "44100",
+            str(sf2),
+            str(mid),
+        ],
         capture_output=True,
         text=True,
         timeout=120,
