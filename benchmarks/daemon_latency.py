@@ -88,24 +88,37 @@ def write_venue(path: Path, *, window_s: float = WINDOW_S, seed: int = SEED) -> 
     from bridge.profiles import VenueProfile, save_venue
 
     s = demo_board_settings(seed, window_s)
-    cal = demo_calibration(s, demo_channels(s))
+    channels = demo_channels(s)
+    if channels != rig_channels():
+        raise RuntimeError("rig_channels() no longer matches the demo board's channels")
+    cal = demo_calibration(s, channels)
     save_venue(path, VenueProfile.from_calibration(cal, notes="benchmark soundcheck"))
 
 
-def load_setup(venue_path: Path, url: str, *, window_s: float = WINDOW_S, seed: int = SEED) -> Any:
+def rig_channels() -> list[Any]:
+    """The demo board's channels (as :func:`bridge.demo.demo_channels` gives them), written
+    out so that the daemon child does not import the simulator, as a real daemon does not."""
+    from bridge.pipeline import ChannelSettings
+
+    return [
+        ChannelSettings(name="pitch", role="pitch", kind="period"),
+        ChannelSettings(name="volume", role="volume", kind="period"),
+        ChannelSettings(name="ref", role="reference", kind="period"),
+    ]
+
+
+def load_setup(venue_path: Path, url: str, *, window_s: float = WINDOW_S) -> Any:
     """The daemon's Setup: the demo board's channel layout and the saved venue profile."""
     from bridge.daemon import Setup
-    from bridge.demo import demo_board_settings, demo_channels
     from bridge.frames import FrameSettings
     from bridge.pipeline import VoiceSettings
     from bridge.profiles import load_venue
     from bridge.sources import SourceSettings
 
-    s = demo_board_settings(seed, window_s)
     return Setup(
-        channels=demo_channels(s),
+        channels=rig_channels(),
         voices=[VoiceSettings(name="lead", pitch_channel="pitch", volume_channel="volume")],
-        frames=FrameSettings(format="text", leading_seq=True, kind=s.kind),
+        frames=FrameSettings(format="text", leading_seq=True, kind="period"),
         source=SourceSettings(url=url),
         rate_hz=1.0 / window_s,
         calibration=load_venue(venue_path).calibration(),

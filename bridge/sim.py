@@ -203,7 +203,10 @@ class DriftSettings(BaseModel):
 
     ``ramp``: linear, reaching the given percent after ``duration_s`` and going on.
     ``sine``: (1 - cos(pi t / duration_s)) / 2 times the percent: there and back in 2 durations.
-    ``walk``: random walk whose std after ``duration_s`` is the percent (sign random).
+    ``walk``: a smooth random wander whose std after ``duration_s`` is the percent (sign
+    random). The drift *rate* random-walks and the drift integrates it (integrated Brownian
+    motion), so the level changes smoothly over seconds as thermal drift does, instead of
+    jittering from frame to frame.
     """
 
     model_config = ConfigDict(extra="forbid")
@@ -692,6 +695,8 @@ class SimBoard:
         self._last_ticks = self._edge_ticks(np.zeros(n_ch), obs0, self._f0)
         self._walk_c = np.zeros(n_ch)
         self._walk_g = 0.0
+        self._walk_vc = np.zeros(n_ch)
+        self._walk_vg = 0.0
         self._frames_done = 0
         self._chunk: _Chunk | None = None
         self._cur: int | None = None
@@ -813,9 +818,15 @@ class SimBoard:
         if d.mode == "off":
             return np.zeros((n, len(self._specs))), np.zeros(n)
         if d.mode == "walk":
-            step = math.sqrt(self.settings.window_s / d.duration_s)
-            x = self._walk_c + np.cumsum(pc * step * z_c, axis=0)
-            g = self._walk_g + np.cumsum(pg * step * z_g)
+            # Integrated Brownian motion: rate v with variance s_v^2 t, level x = int v dt,
+            # var x(T) = s_v^2 T^3 / 3, so s_v = percent * sqrt(3 / T^3) gives std = percent.
+            dt = self.settings.window_s
+            kick = math.sqrt(3.0 / d.duration_s**3) * math.sqrt(dt)
+            vc = self._walk_vc + np.cumsum(pc * kick * z_c, axis=0)
+            vg = self._walk_vg + np.cumsum(pg * kick * z_g)
+            x = self._walk_c + np.cumsum(vc * dt, axis=0)
+            g = self._walk_g + np.cumsum(vg * dt)
+            self._walk_vc, self._walk_vg = vc[-1].copy(), float(vg[-1])
             self._walk_c = x[-1].copy()
             self._walk_g = float(g[-1])
             return x * self._drift_scale, g
