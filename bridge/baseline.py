@@ -75,12 +75,15 @@ class BaselineSettings(BaseModel):
     threshold_sigma: float = Field(default=6.0, gt=0.0)
     hysteresis_sigma: float = Field(default=2.0, ge=0.0)
     debounce_frames: int = Field(default=3, ge=1)
-    follow_tau_s: float = Field(default=5.0, gt=0.0)
+    follow_tau_s: float = Field(default=0.5, gt=0.0)
     recover_tau_s: float = Field(default=0.25, gt=0.0)
     max_follow_c_per_s: float = Field(default=2e-4, ge=0.0)
     reverse_sigma: float = Field(default=3.0, gt=0.0)
     rebase_after_s: float = Field(default=1.0, gt=0.0)
     average_tau_s: float = Field(default=0.1, gt=0.0)
+    #: When a hand is detected, the baseline returns to its value this long before: the
+    #: follower may have absorbed the start of the hand's approach (0 = off).
+    rollback_s: float = Field(default=0.3, ge=0.0)
     noise_floor_c: float = Field(default=1e-5, gt=0.0)
 
     @model_validator(mode="after")
@@ -117,6 +120,8 @@ class BaselineTracker:
         "_rev",
         "_rev_mean",
         "_rev_run",
+        "_ring",
+        "_ring_i",
         "_run",
         "kind",
         "noise",
@@ -157,6 +162,9 @@ class BaselineTracker:
         self._run = 0
         self._rev_run = 0
         self._rev_mean = 0.0
+        # the baselines of the last rollback_s, oldest at _ring_i (allocated once)
+        self._ring = [float(base)] * max(1, round(s.rollback_s * rate_hz))
+        self._ring_i = 0
 
     def _set_sigma(self) -> None:
         sigma_c = max(self.noise / self._base, self.settings.noise_floor_c)
@@ -199,11 +207,18 @@ class BaselineTracker:
             else:
                 self._run = 0
             return base
+        ring, i = self._ring, self._ring_i
+        older = ring[i]
+        ring[i] = base
+        self._ring_i = i + 1 if i + 1 < len(ring) else 0
         if z > self._on:
             self._run += 1
             if self._run >= self._debounce:
                 self._present = True
                 self._run = 0
+                if self.settings.rollback_s > 0.0:
+                    # undo what the follower absorbed of the hand's approach
+                    self._base = base = older
             self._rev_run = 0
             self._rev_mean = 0.0
             return base
@@ -231,6 +246,7 @@ class BaselineTracker:
 
     def _rebase_to(self, value: float) -> float:
         self._base = value
+        self._ring[:] = [value] * len(self._ring)
         self._avg = value
         self._set_sigma()
         self._c = 0.0

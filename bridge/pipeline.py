@@ -124,7 +124,7 @@ class Reading:
 class _Sensing:
     """The state of one antenna channel: tracker, calibration curve, filter."""
 
-    __slots__ = ("index", "view", "tracker", "curve", "count", "filter")
+    __slots__ = ("index", "view", "tracker", "curve", "count", "filter", "ring", "ring_i")
 
     def __init__(
         self,
@@ -144,6 +144,10 @@ class _Sensing:
         self.count = cal.kind == "count"
         self.filter = smoothing.make(rate_hz) if smoothing.enabled else None
         view.baseline = cal.baseline
+        # the last mean_frames readings (allocated once); empty when averaging is off
+        k = smoothing.mean_frames(rate_hz)
+        self.ring: list[float] = [0.0] * k if k > 1 else []
+        self.ring_i = -1  # -1: not filled yet
 
 
 class _Voice:
@@ -272,6 +276,19 @@ class Engine:
             raw = float(values[s.index])
             view.raw = raw
             x = raw * scale
+            ring = s.ring
+            if ring and 0.0 < x < math.inf:
+                # Mean of the last k readings before the curve: the curve is not linear, so
+                # curving noisy single readings and smoothing afterwards biases the pitch
+                # (by tens of cents at 1000 frames/s). For a period board the mean of k
+                # windows is one k-times-longer reciprocal measurement.
+                i = s.ring_i
+                if i < 0:
+                    ring[:] = [x] * len(ring)
+                    i = 0
+                ring[i] = x
+                s.ring_i = i + 1 if i + 1 < len(ring) else 0
+                x = sum(ring) / len(ring)
             base = s.tracker.update(x)
             view.baseline = base
             # c_from_raw inlined: c = N0/N - 1 (counts) or P/P0 - 1 (periods).

@@ -169,6 +169,16 @@ class SmoothingSettings(BaseModel):
     min_cutoff_hz: float = Field(default=0.5, gt=0.0, le=100.0, description="cutoff when still")
     beta: float = Field(default=5.0, ge=0.0, le=10_000.0, description="cutoff rise per unit/s of speed")
     derivative_cutoff_hz: float = Field(default=3.0, gt=0.0, le=100.0, description="speed smoothing")
+    mean_s: float = Field(
+        default=0.004,
+        ge=0.0,
+        le=0.1,
+        description="readings of the last mean_s seconds averaged before the calibration curve",
+    )
+
+    def mean_frames(self, rate_hz: float) -> int:
+        """How many readings ``mean_s`` spans at ``rate_hz`` (at least 1: no averaging)."""
+        return max(1, round(self.mean_s * rate_hz))
 
     def make(self, rate_hz: float) -> OneEuro:
         """A fresh filter for one channel at the nominal frame rate `rate_hz`."""
