@@ -63,7 +63,7 @@ FIGURES: list[Figure] = []
 def figure(name: str, value: float, unit: str, *, goal: str = "", digits: int = 3) -> float:
     """Print ``name: value unit`` (with the goal as a trailing comment) and record it."""
     if isinstance(value, float) and math.isfinite(value):
-        shown = f"{value:.{digits}g}" if abs(value) < 10 ** digits else f"{value:.0f}"
+        shown = f"{value:.{digits}g}" if abs(value) < 10**digits else f"{value:.0f}"
     else:
         shown = str(value)
     tail = f"   # goal {goal}" if goal else ""
@@ -201,7 +201,7 @@ def play(
     """Run the performance on a board like the soundcheck's, but with its own noise seed."""
     seed = (rig.sim.seed or 0) + seed_offset
     board = SimBoard(rig.sim.model_copy(update={"seed": seed}), performance)
-    n = int(round(performance.duration / rig.sim.window_s))
+    n = round(performance.duration / rig.sim.window_s)
     return board.run(n)
 
 
@@ -246,9 +246,7 @@ def ideal_note(rig: Rig, truth: Truth) -> FloatArray:
     return p.lowest_note + p.span_semitones * pos
 
 
-def smooth_notes(
-    rig: Rig, position: FloatArray, smoothing: SmoothingSettings
-) -> FloatArray:
+def smooth_notes(rig: Rig, position: FloatArray, smoothing: SmoothingSettings) -> FloatArray:
     """What the engine's voice would play for these unsmoothed positions with ``smoothing``.
 
     The engine filters the pitch channel's position and maps it linearly (no scale pull):
@@ -273,4 +271,6 @@ def positions_to_distance(rig: Rig, positions: FloatArray) -> FloatArray:
 
 
 def header(title: str) -> None:
-    note(f"{title} ({DATE}; {machine()}; {' '.join([os.path.basename(sys.argv[0])] + sys.argv[1:])})")
+    note(
+        f"{title} ({DATE}; {machine()}; {' '.join([os.path.basename(sys.argv[0])] + sys.argv[1:])})"
+    )

@@ -15,9 +15,9 @@ wandering, playing vibrato and leaving), encoded once before timing. The timed l
 
 Two ways of feeding bytes: one frame per ``feed`` call (what a serial read returns at
 1000 frames a second when the loop keeps up, the per-call costs included; the goal
-figure) and 4096-byte chunks cut anywhere (a loop catching up after a stall). Each loop runs ``--repeats``
-times on fresh objects and the fastest run counts (least disturbed by other load on a
-shared machine). One Python thread: one core.
+figure) and 4096-byte chunks cut anywhere (a loop catching up after a stall). Each loop
+runs ``--repeats`` times on fresh objects and the fastest run counts (least disturbed by
+other load on a shared machine). One Python thread: one core.
 
     python benchmarks/core_throughput.py                  # 200,000 frames
     python benchmarks/core_throughput.py --quick          # 20,000 frames
@@ -40,11 +40,11 @@ from pathlib import Path
 
 sys.path.insert(0, str(Path(__file__).resolve().parent))
 
-from common import Rig, best_time, figure, header, make_engine, make_rig, note  # noqa: E402
+from common import Rig, best_time, figure, header, make_engine, make_rig, note
 
-from bridge.frames import TextDecoder, encode_text  # noqa: E402
-from bridge.outputs.midi import MidiSettings, MidiSink  # noqa: E402
-from bridge.sim import Performance, SimBoard  # noqa: E402
+from bridge.frames import TextDecoder, encode_text
+from bridge.outputs.midi import MidiSettings, MidiSink
+from bridge.sim import Performance, SimBoard
 
 GOAL_FPS = 100_000.0
 CHUNK_BYTES = 4096
@@ -141,7 +141,9 @@ def midi_only(rig: Rig, frames: Sequence[list[int]]) -> Callable[[], int]:
     return run
 
 
-def full(rig: Rig, pieces: Sequence[bytes], counts: dict[str, int] | None = None) -> Callable[[], int]:
+def full(
+    rig: Rig, pieces: Sequence[bytes], counts: dict[str, int] | None = None
+) -> Callable[[], int]:
     names = [c.name for c in rig.channels]
     dt = 1.0 / rig.rate_hz
 
@@ -192,9 +194,10 @@ def run(n_frames: int = 200_000, repeats: int = 5, profile: bool = False) -> Non
         f"{len(lines)} two-channel text frames ({sum(map(len, lines)) / len(lines):.1f} bytes "
         f"each), period board at 1000 frames/s; set-up {time.perf_counter() - t0:.1f} s"
     )
-    frames = [fr.values for fr in TextDecoder([c.name for c in rig.channels], synced=True).feed(
-        b"".join(lines)
-    )]
+    frames = [
+        fr.values
+        for fr in TextDecoder([c.name for c in rig.channels], synced=True).feed(b"".join(lines))
+    ]
     if len(frames) != len(lines):  # the input itself would be wrong: no figure means anything
         raise RuntimeError(f"the decoder returned {len(frames)} of {len(lines)} frames")
     n = len(frames)

@@ -43,7 +43,7 @@ Figures (``name: value unit``; goals from the issue "The live daemon")::
     frames                         measured frames per bridge
     lost                           measured frames the daemon never delivered
 
-    python benchmarks/daemon_latency.py            # 2 x 3000 frames per bridge, ~30 s
+    python benchmarks/daemon_latency.py            # 4 x 1500 frames per bridge, ~30 s
     python benchmarks/daemon_latency.py --quick    # 1 x 2000 frames per bridge
     python benchmarks/daemon_latency.py --cprofile # also profile the daemon child
 
@@ -170,7 +170,7 @@ def child_daemon(args: argparse.Namespace) -> int:
     from bridge.outputs import make_sink
     from bridge.outputs.osc import OscSettings
 
-    setup = load_setup(Path(args.venue), args.url)
+    setup = load_setup(Path(args.venue), args.url, window_s=args.window_s)
     sinks = [make_sink("osc", OscSettings(destinations=[args.osc]))]
     if args.midi == "null":
         from bridge.outputs.midi import MidiSettings
@@ -557,7 +557,7 @@ def parse(argv: Sequence[str] | None = None) -> argparse.Namespace:
     p = argparse.ArgumentParser(description=__doc__.split("\n")[0])
     p.add_argument("--quick", action="store_true", help="one round of 2000 frames per bridge")
     p.add_argument("--frames", type=int, default=6000, help="measured frames per bridge (default 6000)")
-    p.add_argument("--rounds", type=int, default=2, help="turns per bridge (default 2)")
+    p.add_argument("--rounds", type=int, default=4, help="turns per bridge (default 4)")
     p.add_argument("--cprofile", nargs="?", const="yes", default=None,
                    help="profile the daemon child (cProfile) and print its top costs")
     # Child roles (this file starts itself).
@@ -568,6 +568,7 @@ def parse(argv: Sequence[str] | None = None) -> argparse.Namespace:
     p.add_argument("--venue", help=argparse.SUPPRESS)
     p.add_argument("--midi", default="none", help=argparse.SUPPRESS)
     p.add_argument("--out", help=argparse.SUPPRESS)
+    p.add_argument("--window-s", type=float, default=WINDOW_S, help=argparse.SUPPRESS)
     return p.parse_args(argv)
 
 

@@ -34,7 +34,9 @@ BENCHMARKS: dict[str, tuple[list[str], list[str]]] = {
     "fuzz_decoders": (["--chunks", "300000"], ["--chunks", "20000"]),
 }
 
-FIGURE = re.compile(r"^(?P<name>[A-Za-z0-9_]+): (?P<value>\S+) (?P<unit>\S+)(?:\s+# goal (?P<goal>.+))?$")
+FIGURE = re.compile(
+    r"^(?P<name>[A-Za-z0-9_]+): (?P<value>\S+) (?P<unit>\S+)(?:\s+# goal (?P<goal>.+))?$"
+)
 GOAL = re.compile(r"^(?P<op><=|>=|<|>)\s*(?P<limit>[0-9.eE+-]+)$")
 OPS = {"<": operator.lt, "<=": operator.le, ">": operator.gt, ">=": operator.ge}
 
@@ -89,7 +91,10 @@ def main(argv: Sequence[str] | None = None) -> int:
         width = max(len(m["name"]) for m in goals)
         for m in goals:
             met = goal_met(m["value"], m["goal"])
-            print(f"##   {m['name']:<{width}}  {m['value']:>10} {m['unit']:<11} goal {m['goal']:<10} met: {met}")
+            print(
+                f"##   {m['name']:<{width}}  {m['value']:>10} {m['unit']:<11} "
+                f"goal {m['goal']:<10} met: {met}"
+            )
     if failed:
         print(f"## crashed: {', '.join(failed)}", file=sys.stderr)
         return 1

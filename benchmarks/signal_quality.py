@@ -58,7 +58,7 @@ from numpy.typing import NDArray
 
 sys.path.insert(0, str(Path(__file__).resolve().parent))
 
-from common import (  # noqa: E402  (the benchmarks folder is not a package)
+from common import (  # (the benchmarks folder is not a package)
     FROZEN_BASELINE,
     FloatArray,
     Rig,
@@ -74,9 +74,9 @@ from common import (  # noqa: E402  (the benchmarks folder is not a package)
     smooth_notes,
 )
 
-from bridge.pipeline import Kind  # noqa: E402
-from bridge.sim import DriftSettings, HumSettings, NoiseSettings, Performance, Truth  # noqa: E402
-from bridge.smoothing import SmoothingSettings  # noqa: E402
+from bridge.pipeline import Kind
+from bridge.sim import DriftSettings, HumSettings, NoiseSettings, Performance, Truth
+from bridge.smoothing import SmoothingSettings
 
 CENTS = 100.0
 MID = 0.5
@@ -188,7 +188,9 @@ def move_timing(
     return float(np.mean(delays)) * 1e3, float(np.max(delays)) * 1e3, float(np.mean(extra)) * 1e3
 
 
-def lag(rig: Rig, sz: Sizes, smoothing: SmoothingSettings | None = None) -> tuple[float, float, float]:
+def lag(
+    rig: Rig, sz: Sizes, smoothing: SmoothingSettings | None = None
+) -> tuple[float, float, float]:
     st = step_performance(rig, sz)
     values, truth = play(rig, st.perf, seed_offset=2000)
     trace = run_engine(make_engine(rig, smoothing=smoothing), values)
@@ -212,8 +214,10 @@ def linearity(rig: Rig, sz: Sizes) -> tuple[float, float, float]:
     # The naive map: position linear in the raw reading between the far and near holds.
     cal = rig.cal.channels["pitch"]
     c_far, c_near = cal.points[0].c, cal.points[-1].c
-    to_raw = (lambda c: cal.baseline / (1.0 + c)) if rig.kind == "count" else (
-        lambda c: cal.baseline * (1.0 + c)
+    to_raw = (
+        (lambda c: cal.baseline / (1.0 + c))
+        if rig.kind == "count"
+        else (lambda c: cal.baseline * (1.0 + c))
     )
     raw_far, raw_near = to_raw(c_far), to_raw(c_near)
     col = [c.name for c in rig.channels].index("pitch")
@@ -283,9 +287,9 @@ def drift(sz: Sizes, gain_percent: float = 1.0) -> dict[str, tuple[float, float,
         steady &= truth.present_pitch
         played = float(np.mean(truth.present_pitch))
         configs = {
-            "frozen": dict(baseline=FROZEN_BASELINE, use_reference=False),
-            "tracking": dict(use_reference=False),
-            "reference": dict(use_reference=True),
+            "frozen": {"baseline": FROZEN_BASELINE, "use_reference": False},
+            "tracking": {"use_reference": False},
+            "reference": {"use_reference": True},
         }
         if label == "no_drift":
             configs = {"reference": configs["reference"]}
@@ -347,15 +351,22 @@ def explore(sz: Sizes) -> None:
         rig = make_rig("period", 1.0 / rate)
         quiet = make_rig("period", 1.0 / rate)
         quiet.sim = quiet.sim.model_copy(
-            update={"noise": NoiseSettings(freq_ppm=0.0, phase_cycles=0.0), "hum": HumSettings(ppm=0.0)}
+            update={
+                "noise": NoiseSettings(freq_ppm=0.0, phase_cycles=0.0),
+                "hum": HumSettings(ppm=0.0),
+            }
         )
         perf, start = still_performance(rig, sz)
         v, tr = play(rig, perf)
-        still_pos = run_engine(make_engine(rig, smoothing=SmoothingSettings(enabled=False)), v).position
+        still_pos = run_engine(
+            make_engine(rig, smoothing=SmoothingSettings(enabled=False)), v
+        ).position
         still_seg = tr.t >= start + sz.settle_s
         st = step_performance(rig, sz)
         v2, tr2 = play(rig, st.perf, seed_offset=2000)
-        step_pos = run_engine(make_engine(rig, smoothing=SmoothingSettings(enabled=False)), v2).position
+        step_pos = run_engine(
+            make_engine(rig, smoothing=SmoothingSettings(enabled=False)), v2
+        ).position
         step_in = ideal_note(rig, tr2)
         vib = (
             Performance(seed=3)
@@ -365,14 +376,18 @@ def explore(sz: Sizes) -> None:
             .vibrato(4.0, rate_hz=5.5)
         )
         v3, tr3 = play(quiet, vib, seed_offset=3000)
-        vib_pos = run_engine(make_engine(quiet, smoothing=SmoothingSettings(enabled=False)), v3).position
+        vib_pos = run_engine(
+            make_engine(quiet, smoothing=SmoothingSettings(enabled=False)), v3
+        ).position
         vib_in = ideal_note(quiet, tr3)
         vseg = (tr3.t >= 2.5) & (tr3.t < 4.5)
         phasor = np.exp(-2j * np.pi * 5.5 * tr3.t[vseg])
 
-        def depth(x: FloatArray) -> float:
-            y = x[vseg] - np.mean(x[vseg])
-            return float(abs(np.mean(y * phasor)))
+        def depth(
+            x: FloatArray, seg: NDArray[np.bool_] = vseg, ph: NDArray[np.complex128] = phasor
+        ) -> float:
+            y = x[seg] - np.mean(x[seg])
+            return float(abs(np.mean(y * ph)))
 
         settings = [SmoothingSettings()]
         if rate == 1000.0:
@@ -390,7 +405,7 @@ def explore(sz: Sizes) -> None:
             ]
         for s in settings:
             noise = float(np.std(smooth_notes(rig, still_pos, s)[still_seg])) * CENTS
-            d50, worst, rise = move_timing(
+            d50, worst, _ = move_timing(
                 tr2.t, step_in, smooth_notes(rig, step_pos, s), st.starts, rig.rate_hz
             )
             keep = depth(smooth_notes(quiet, vib_pos, s)) / depth(vib_in)
@@ -436,9 +451,16 @@ def run(quick: bool = False, explore_too: bool = False, drift_minutes: float | N
         )
         res = drift(sz)
         goals = {"tracking": "< 15", "reference": "< 5"}
-        keys = ("frozen", "tracking", "reference", "no_drift_reference", "bound_tracking", "bound_reference")
+        keys = (
+            "frozen",
+            "tracking",
+            "reference",
+            "no_drift_reference",
+            "bound_tracking",
+            "bound_reference",
+        )
         for key in keys:
-            mean, p95, played = res[key]
+            mean, p95, _ = res[key]
             figure(f"drift_{key}_mean_abs_error", mean, "cents", goal=goals.get(key, ""))
             figure(f"drift_{key}_p95_abs_error", p95, "cents")
         figure("drift_set_time_played", res["reference"][2] * 100.0, "percent")

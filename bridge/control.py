@@ -170,7 +170,11 @@ class ControlServer:
         self._stop.set()
         with self._lock:
             for _w, q in self._watchers:
-                q.put_nowait(None)
+                try:
+                    q.put_nowait(None)
+                except queue.Full:  # a watcher that stopped reading: make room for the end mark
+                    q.get_nowait()
+                    q.put_nowait(None)
         if self._thread is not None:
             self._thread.join(timeout=1.0)
         if self._sock is not None:
@@ -228,10 +232,10 @@ class ControlServer:
             conn.settimeout(30.0)
             f = conn.makefile("rwb", buffering=0)
             while not self._stop.is_set():
-                line = f.readline(MAX_REQUEST + 1)
+                line = f.readline(MAX_REQUEST + 2)
                 if not line:
                     return
-                if len(line) > MAX_REQUEST:
+                if len(line.rstrip(b"\r\n")) > MAX_REQUEST:
                     self._reply(conn, {"ok": False, "error": f"request over {MAX_REQUEST} bytes"})
                     return
                 try:

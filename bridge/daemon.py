@@ -219,6 +219,8 @@ class Daemon:
                     self.counters.frames += 1
                     if not self._requests.empty():
                         self._serve_requests()  # a switch lands before the next frame
+                        engine = self.engine
+                        assert engine is not None
             if not self._requests.empty():
                 self._serve_requests()
             if self._reload.is_set():
@@ -313,7 +315,7 @@ class Daemon:
             engine = setup.engine()
             if [c.name for c in setup.channels] != [c.name for c in self.setup.channels]:
                 raise BridgeError("the new profile names other channels: restart the daemon")
-        except BridgeError as e:
+        except Exception as e:  # any failure keeps the old profile playing
             log.warning("%s refused, keeping profile %r: %s", why, self.setup.profile, e)
             self.notifier.ready(self._status_text())
             return {"ok": False, "error": str(e), "profile": self.setup.profile}

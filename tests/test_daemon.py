@@ -82,9 +82,7 @@ def test_frames_flow_to_midi_and_osc(
     assert d.engine is not None
     assert sounding == pytest.approx(d.engine.reading.voices[0].note, abs=12.0 / 8192.0)
     # Every way out ends held notes: nothing left on, All Notes Off (B0 7B 00) at close.
-    if port.sounding(msgs):
-        open("/tmp/h_pd/fail.txt", "w").write(" ".join(m.hex() for m in msgs))
-    assert port.sounding(msgs) == {}
+    assert port.sounding(msgs) == {}, f"left on; note messages: {port.notes(msgs)}"
     assert msgs[-1] == bytes.fromhex("B07B00")
     assert port.closed and port.close_calls == 1
     # OSC: the last level sent is silence (the listener may still be reading it), and
@@ -162,7 +160,7 @@ def _held_high():  # noqa: ANN202
 
 def _activate_and_check(run: Any, port: Any, path: Path) -> dict[str, Any]:
     port.wait_for(has_note_on, 10.0, "a note-on under the first profile")
-    run.wait_frames(20)
+    run.wait_frames(100)  # the glide is over: the hand holds still
     before = run.daemon.counters.frames
     reply = ControlClient(path).request({"op": "activate", "name": "harbour-chapel"})
     assert reply["ok"] is True and reply["profile"] == "harbour-chapel", reply
@@ -210,11 +208,6 @@ def test_activate_ends_held_notes_then_plays_the_new_profile(
     assert port.sounding(port.snapshot()) == {}
 
 
-@pytest.mark.xfail(
-    strict=True,
-    reason="bug: Daemon.loop keeps the old engine in a local variable for the rest of a "
-    "read chunk, so frames after a switch in the same chunk play the old profile again",
-)
 def test_no_note_from_the_old_profile_after_a_switch_mid_chunk(
     demo_cal, boards, setup_for, run_daemon, recording_port, osc_listener, short_dir
 ) -> None:
@@ -232,7 +225,7 @@ def test_no_note_from_the_old_profile_after_a_switch_mid_chunk(
     _activate_and_check(run, port, path)
     run.wait_frames(20)
     after_on = [e.note for e in port.notes(port.since("switch")) if e.on]
-    assert all(n > OLD_LOW + SPAN for n in after_on), f"old-profile notes after the switch: {after_on}"
+    assert all(n > OLD_LOW + SPAN for n in after_on), f"old-profile notes after it: {after_on}"
 
 
 def test_invalid_profile_keeps_the_old_one_and_says_why(
@@ -295,7 +288,7 @@ def test_rebase_takes_the_current_reading_as_hand_absent(
     path = short_dir / "run" / "control.sock"
     run = run_daemon(setup_for(board.path), midi_and_osc(port, osc), control_path=path)
     port.wait_for(has_note_on, 10.0, "a note-on")
-    run.wait_frames(20)
+    run.wait_frames(100)  # the glide is over: the hand holds still at 0.15 m
     port.mark("rebase")
     reply = ControlClient(path).request({"op": "rebase"})
     assert reply["ok"] is True and set(reply["baselines"]) == {"pitch", "volume"}
