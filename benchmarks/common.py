@@ -5,7 +5,8 @@ Every benchmark builds the same thing a performer would: a simulated board
 (:func:`bridge.soundcheck.simulated_holds`), a calibration fitted from it
 (:func:`bridge.soundcheck.fit_rig`) and an :class:`bridge.pipeline.Engine`. The board
 that plays the benchmark's performance gets a different seed from the soundcheck board,
-so the calibration never sees the noise it is judged on.
+so the calibration never sees the noise it is judged on. The engine cancels mains hum
+as a rig file with ``board.mains_hz`` set to the simulator's hum frequency would.
 
 Figures are printed one per line as ``name: value unit`` (DEVELOPERS.md, "How to
 benchmark") and kept in :data:`FIGURES` so that ``run_all.py`` can list them again.
@@ -31,6 +32,7 @@ import numpy as np
 from numpy.typing import NDArray
 
 from bridge.baseline import BaselineSettings
+from bridge.humfilter import MainsFilterSettings
 from bridge.mapping import PitchSettings
 from bridge.pipeline import ChannelSettings, Engine, Kind, VoiceSettings
 from bridge.sim import DriftSettings, Performance, SimBoard, SimSettings, Truth
@@ -170,8 +172,13 @@ def make_engine(
     smoothing: SmoothingSettings | None = None,
     baseline: BaselineSettings | None = None,
     use_reference: bool = True,
+    mains_filter: MainsFilterSettings | None = None,
 ) -> Engine:
-    """An engine for the rig. ``use_reference=False`` ignores a reference channel (role unused)."""
+    """An engine for the rig. ``use_reference=False`` ignores a reference channel (role unused).
+
+    ``mains_filter`` defaults to the rig file's default with ``board.mains_hz`` set to the
+    simulator's hum frequency (50 Hz); pass ``MainsFilterSettings(enabled=False)`` for none.
+    """
     channels = rig.channels
     if not use_reference:
         channels = [
@@ -186,7 +193,14 @@ def make_engine(
         baseline=baseline,
         smoothing=smoothing,
         reference_base=rig.cal.reference_base if use_reference else None,
+        mains_filter=(mains_filter or MainsFilterSettings()).with_board_mains(board_mains(rig)),
     )
+
+
+def board_mains(rig: Rig) -> int | None:
+    """The ``board.mains_hz`` a rig file would give for the simulator's hum (50 or 60)."""
+    hz = rig.sim.hum.hz
+    return int(hz) if hz in (50.0, 60.0) else None
 
 
 #: Baseline settings that never move the baseline: the one captured at soundcheck stays.

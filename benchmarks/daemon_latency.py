@@ -9,7 +9,8 @@ The bridge is, in turn:
 ``daemon``     the real :class:`bridge.daemon.Daemon` with a venue profile loaded from a
                file (a simulated soundcheck at 1 kHz, saved with
                :func:`bridge.profiles.save_venue`), text frames with a leading sequence
-               number, and an :class:`bridge.outputs.osc.OscSink` to the listener;
+               number, and an :class:`bridge.outputs.osc.OscSink` to the listener (OSC
+               only: daemon_load.py measures the rig with MIDI too);
 ``forwarder``  the floor: a minimal pyserial program that reads what arrived (one blocking
                byte, then whatever else is waiting, the same read pattern as
                :class:`bridge.sources.SerialSource`), cuts it into lines and sends each
@@ -379,6 +380,7 @@ def pty_pair() -> Iterator[tuple[int, str]]:
     open so the pty outlives the reader's open and close."""
     master, slave = os.openpty()
     tty.setraw(slave)
+    os.set_blocking(master, False)  # a full pty buffer must not stall the board
     try:
         yield master, os.ttyname(slave)
     finally:
@@ -446,7 +448,8 @@ def play_turn(
             frame = encode(warm[i % len(warm)], seq)
             i += 1
             pace()
-            write(master, frame)
+            with contextlib.suppress(BlockingIOError):  # nobody reads yet: the pty is full
+                write(master, frame)
             seq += 1
             if heard_at is None and seq % 50 == 0 and listener.ready_line():
                 listener.line(1)
@@ -458,8 +461,13 @@ def play_turn(
         for key in measured:
             frame = encode(key, seq)
             pace()
-            sent_ns.append(clock())
-            write(master, frame)
+            t = clock()
+            try:
+                if write(master, frame) != len(frame):
+                    t = -1  # a partial write: the bridge is not keeping up; counted lost
+            except BlockingIOError:
+                t = -1
+            sent_ns.append(t)
             seq += 1
         time.sleep(0.2)  # stragglers
         sout, serr = subject.stop()
@@ -474,7 +482,7 @@ def play_turn(
         for row in f:
             t, *vals = map(int, row.split())
             j = index.get(tuple(vals))
-            if j is not None and j not in got:
+            if j is not None and j not in got and sent_ns[j] >= 0:
                 got[j] = t - sent_ns[j]
     out.unlink()
     return Turn(bridge, list(got.values()), len(measured), len(measured) - len(got),
@@ -516,6 +524,7 @@ def main_parent(args: argparse.Namespace) -> int:
         pool = unique_frames(warm_n + rounds * per_round)
         warm = pool[:warm_n]
         lat: dict[str, list[int]] = {"forwarder": [], "daemon": []}
+        round_p99: dict[str, list[float]] = {"forwarder": [], "daemon": []}
         lost: dict[str, int] = {"forwarder": 0, "daemon": 0}
         sent: dict[str, int] = {"forwarder": 0, "daemon": 0}
         prof = str(work / "daemon.prof") if args.cprofile else None
@@ -525,6 +534,7 @@ def main_parent(args: argparse.Namespace) -> int:
                 turn = play_turn(bridge, venue, warm, measured, work,
                                  cprofile=prof if r == rounds - 1 else None)
                 lat[bridge] += turn.latencies_ns
+                round_p99[bridge].append(percentile_ms(turn.latencies_ns, 99))
                 lost[bridge] += turn.lost
                 sent[bridge] += turn.sent
                 s = turn.summary
@@ -547,6 +557,10 @@ def main_parent(args: argparse.Namespace) -> int:
              f"{max(lat['daemon']) / 1e6:.3f} ms; forwarder p99.9 "
              f"{percentile_ms(lat['forwarder'], 99.9):.3f} ms, max "
              f"{max(lat['forwarder']) / 1e6:.3f} ms; load average {os.getloadavg()[0]:.2f}")
+        note("p99 of each round (ms): " + "; ".join(
+            f"{b} {', '.join(f'{x:.2f}' for x in v)}" for b, v in round_p99.items()))
+        note("the tails follow the machine's other work (2 shared cores); the p50 is the "
+             "steadier measure of what the daemon adds")
         if prof:
             note("daemon profile (last round, whole run incl. start-up), by own time:")
             print_profile(prof)

@@ -74,6 +74,7 @@ def setup_for(store: Any, name: str | None = None) -> Any:
         baseline=played.baseline,
         smoothing=played.smoothing,
         profile=name,
+        mains_filter=played.mains_filter.with_board_mains(rig.board.mains_hz),
     )
 
 

@@ -33,6 +33,7 @@ from .baseline import BaselineSettings
 from .control import Activate, ControlServer, OscControl, Rebase, Reload, Status
 from .errors import BridgeError
 from .frames import FrameSettings, make_decoder
+from .humfilter import MainsFilterSettings
 from .mapping import note_name
 from .notify import Notifier
 from .outputs import Sink
@@ -59,6 +60,7 @@ class Setup:
     baseline: BaselineSettings = field(default_factory=BaselineSettings)
     smoothing: SmoothingSettings = field(default_factory=SmoothingSettings)
     profile: str = "(none)"
+    mains_filter: MainsFilterSettings = field(default_factory=MainsFilterSettings)
 
     def engine(self) -> Engine:
         return Engine(
@@ -69,6 +71,7 @@ class Setup:
             baseline=self.baseline,
             smoothing=self.smoothing,
             reference_base=self.calibration.reference_base,
+            mains_filter=self.mains_filter,
         )
 
 

@@ -18,8 +18,9 @@ the sampled phasor aliases the same way)::
 This is the adaptive noise canceller with a sinusoidal reference (Widrow et al.,
 "Adaptive noise cancelling: principles and applications", Proc. IEEE 63(12), 1975); the
 update is the LMS rule, which for a sinusoid is synchronous demodulation: A and B follow
-the in-phase and quadrature amplitudes with time constant ``tau`` (2g times the mean
-square 1/2 of a sinusoid is 1/tau per... frame, i.e. g). As a linear filter it is a notch
+the in-phase and quadrature amplitudes with time constant ``tau`` (a step of 2g on a
+regressor whose mean square is 1/2 closes a fraction g of the gap each frame, and
+g = 1/(tau rate) is a time constant of tau). As a linear filter it is a notch
 of width about 1/(pi tau) Hz at each mains harmonic (Widrow et al. 1975), so the hand
 signal (all below about 10 Hz, vibrato 5-7 Hz) passes with no delay: the output of a
 frame is that frame's reading minus a sinusoid fixed by the past, and a step in the
@@ -47,7 +48,7 @@ the smoother's cutoff). Frames lost on the link shift the phase unless the engin
 brings its own hum changes it, and the canceller re-converges in about ``tau``.
 
     ref = MainsReference([50.0], rate_hz=1000.0)      # one per engine
-    hum = HumCanceller(ref, time_constant_s=1.0)      # one per channel
+    hum = HumCanceller(ref, time_constant_s=0.5)      # one per channel
     for x in readings:
         ref.advance()
         y = hum.clean(x)
@@ -71,7 +72,7 @@ from .errors import ConfigError
 log = logging.getLogger(__name__)
 
 #: Hum frequencies (after aliasing) below this are not cancelled: hand movement lives
-#: there (vibrato 5-7 Hz, DOMAIN.md section 4; fast leaps reach about 10 Hz [memory]),
+#: there (vibrato 5-7 Hz, DOMAIN.md section 5; fast leaps reach about 10 Hz [memory]),
 #: and a notch in that band would eat playing.
 MIN_HUM_HZ = 15.0
 #: Two cancelled frequencies closer than this (after aliasing) would be one component
@@ -80,11 +81,15 @@ MIN_SPACING_HZ = 1.0
 #: The update's error is clipped at this many running mean absolute values (about 3
 #: standard deviations of Gaussian noise, where the mean absolute value is 0.8 sigma).
 CLIP = 4.0
-#: The running scale follows at most up to this many times itself per update, so a step
-#: cannot inflate it quickly (growth limited to (LIMIT - 1) * rate per frame).
+#: The running scale learns from |e| capped at this many times itself, so a step cannot
+#: inflate it quickly (it grows by at most (SCALE_LIMIT - 1) times its rate per frame).
 SCALE_LIMIT = 2.0
 #: Time constant of the running scale, in units of ``time_constant_s``.
 SCALE_TAU = 0.25
+#: The clip level never falls below this fraction of the reading (0.1 ppm, far below one
+#: timer tick in a period reading): a noise-free reading would otherwise shrink the
+#: scale towards zero, and hum appearing later could never be learnt.
+SCALE_FLOOR = 1e-7
 #: Frames at the start during which only the level and the scale are learnt.
 WARMUP_LEVEL_TAUS = 4.0
 
@@ -129,10 +134,16 @@ class MainsFilterSettings(BaseModel):
     )
     harmonics: int = Field(default=1, ge=1, le=8, description="multiples of mains_hz to cancel")
     time_constant_s: float = Field(
-        default=1.0, ge=0.05, le=60.0, description="how fast the hum estimate follows"
+        default=0.5, ge=0.05, le=60.0, description="how fast the hum estimate follows"
     )
 
-    def frequencies(self, rate_hz: float, board_mains_hz: float | None = None) -> list[float]:
+    def with_board_mains(self, board_mains_hz: float | None) -> MainsFilterSettings:
+        """These settings with ``mains_hz`` taken from the board when not set here."""
+        if self.mains_hz is not None or board_mains_hz is None:
+            return self
+        return self.model_copy(update={"mains_hz": int(board_mains_hz)})
+
+    def frequencies(self, rate_hz: float) -> list[float]:
         """The hum frequencies (Hz, before aliasing) to cancel at ``rate_hz`` frames a second.
 
         Empty when the canceller is off. The window is taken as one frame (1/rate_hz).
@@ -140,7 +151,7 @@ class MainsFilterSettings(BaseModel):
         """
         if self.enabled is False:
             return []
-        mains = self.mains_hz if self.mains_hz is not None else board_mains_hz
+        mains = self.mains_hz
         if mains is None:
             if self.enabled is True:
                 raise ConfigError(
@@ -206,11 +217,19 @@ class MainsReference:
     def advance(self, frames: int = 1) -> None:
         """Turn every phasor on by ``frames`` frames (more than one after lost frames)."""
         c_, s_, rc_, rs_ = self.cos, self.sin, self._rc, self._rs
+        if frames == 1 and len(c_) == 1:  # the usual case, without the loops' cost
+            c, s, rc, rs = c_[0], s_[0], rc_[0], rs_[0]
+            c, s = c * rc - s * rs, s * rc + c * rs
+            k = 1.5 - 0.5 * (c * c + s * s)
+            c_[0] = c * k
+            s_[0] = s * k
+            return
         for _ in range(frames):
             for i in range(len(c_)):
                 c, s, rc, rs = c_[i], s_[i], rc_[i], rs_[i]
                 c, s = c * rc - s * rs, s * rc + c * rs
-                k = 1.5 - 0.5 * (c * c + s * s)  # one Newton step towards |z| = 1
+                # One Newton step towards |z| = 1: rounding cannot make the phasor drift.
+                k = 1.5 - 0.5 * (c * c + s * s)
                 c_[i] = c * k
                 s_[i] = s * k
 
@@ -289,9 +308,13 @@ class HumCanceller:
             return x
         ref = self.ref
         cos_, sin_, a_, b_ = ref.cos, ref.sin, self._a, self._b
-        h = 0.0
-        for i in range(len(a_)):
-            h += a_[i] * cos_[i] + b_[i] * sin_[i]
+        k = len(a_)
+        if k == 1:  # the usual case, without the loop's cost
+            h = a_[0] * cos_[0] + b_[0] * sin_[0]
+        else:
+            h = 0.0
+            for i in range(k):
+                h += a_[i] * cos_[i] + b_[i] * sin_[i]
         y = x - h
         n = self._n
         self._n = n + 1
@@ -307,16 +330,22 @@ class HumCanceller:
             self._level = level
             self._scale = scale + (ae - scale) / n
             return y
-        lim = SCALE_LIMIT * scale
+        floor = SCALE_FLOOR * (level if level >= 0.0 else -level)
+        lim = SCALE_LIMIT * scale + floor
         scale += self._g_scale * ((ae if ae < lim else lim) - scale)
-        lim = CLIP * scale
+        lim = CLIP * scale + floor
         if e > lim:
             e = lim
         elif e < -lim:
             e = -lim
-        for i in range(len(a_)):
-            a_[i] += self._gain_cos[i] * e * cos_[i]
-            b_[i] += self._gain_sin[i] * e * sin_[i]
+        gc, gs = self._gain_cos, self._gain_sin
+        if k == 1:
+            a_[0] += gc[0] * e * cos_[0]
+            b_[0] += gs[0] * e * sin_[0]
+        else:
+            for i in range(k):
+                a_[i] += gc[i] * e * cos_[i]
+                b_[i] += gs[i] * e * sin_[i]
         if not math.isfinite(level + scale + h):
             # Absurd input (near the float range) overflowed a sum: start again.
             self.reset()
@@ -327,13 +356,10 @@ class HumCanceller:
 
 
 def make_cancellers(
-    settings: MainsFilterSettings,
-    rate_hz: float,
-    n_channels: int,
-    board_mains_hz: float | None = None,
+    settings: MainsFilterSettings, rate_hz: float, n_channels: int
 ) -> tuple[MainsReference | None, list[HumCanceller]]:
     """The shared reference and one canceller per channel, or (None, []) when off."""
-    freqs = settings.frequencies(rate_hz, board_mains_hz)
+    freqs = settings.frequencies(rate_hz)
     if not freqs:
         return None, []
     ref = MainsReference(freqs, rate_hz)

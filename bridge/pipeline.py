@@ -3,6 +3,8 @@
 For every frame::
 
     reference correction  raw * ref_base / ref_raw        (common-mode oscillator drift)
+    hum cancelling        minus the adaptive mains sinusoid (humfilter.py; when the
+                          window does not span whole mains periods)
     baseline tracking     N0 follows the hand-absent level (baseline.py)
     capacitance           c = N0/N - 1 or P/P0 - 1        (calibrate.c_from_raw)
     calibration           c -> hand position 0..1, linear in distance
@@ -30,6 +32,7 @@ from pydantic import BaseModel, ConfigDict, Field, model_validator
 from .baseline import BaselineSettings, BaselineTracker, ReferenceCorrector
 from .calibrate import ChannelCalibration
 from .errors import ConfigError
+from .humfilter import HumCanceller, MainsFilterSettings, make_cancellers
 from .mapping import LevelMap, LevelSettings, PitchMap, PitchSettings
 from .smoothing import SmoothingSettings
 
@@ -124,7 +127,7 @@ class Reading:
 class _Sensing:
     """The state of one antenna channel: tracker, calibration curve, filter."""
 
-    __slots__ = ("index", "view", "tracker", "curve", "count", "filter", "ring", "ring_i")
+    __slots__ = ("index", "view", "tracker", "curve", "count", "filter", "ring", "ring_i", "hum")
 
     def __init__(
         self,
@@ -148,6 +151,7 @@ class _Sensing:
         k = smoothing.mean_frames(rate_hz)
         self.ring: list[float] = [0.0] * k if k > 1 else []
         self.ring_i = -1  # -1: not filled yet
+        self.hum: HumCanceller | None = None
 
 
 class _Voice:
@@ -197,7 +201,9 @@ class Engine:
 
     ``calibrations`` maps each antenna channel (role pitch or volume) to its calibration;
     ``reference_base`` is the reference channel's hand-absent reading from the same
-    soundcheck (needed when the rig has a reference channel).
+    soundcheck (needed when the rig has a reference channel). ``mains_filter`` (with
+    its ``mains_hz`` resolved, see ``MainsFilterSettings.with_board_mains``) cancels
+    mains hum on every antenna channel and the reference before anything else.
     """
 
     def __init__(
@@ -210,6 +216,7 @@ class Engine:
         baseline: BaselineSettings | None = None,
         smoothing: SmoothingSettings | None = None,
         reference_base: float | None = None,
+        mains_filter: MainsFilterSettings | None = None,
     ) -> None:
         check_layout(channels, voices)
         if not (rate_hz > 0 and math.isfinite(rate_hz)):
@@ -238,6 +245,7 @@ class Engine:
             self._sensing.append(s)
             by_name[c.name] = s
         self._ref_index = next((i for i, c in enumerate(channels) if c.role == "reference"), -1)
+        self._other = [i for i, c in enumerate(channels) if c.role == "unused"]
         self._ref: ReferenceCorrector | None = None
         if self._ref_index >= 0:
             if reference_base is None:
@@ -254,6 +262,13 @@ class Engine:
             vol = by_name[v.volume_channel] if v.volume_channel else None
             self._voices.append(_Voice(vv, by_name[v.pitch_channel], vol, v))
         self.reading = Reading(views, vviews)
+        n_hum = len(self._sensing) + (1 if self._ref_index >= 0 else 0)
+        self._mains, hums = make_cancellers(mains_filter or MainsFilterSettings(), rate_hz, n_hum)
+        for s, hum in zip(self._sensing, hums):
+            s.hum = hum
+        self._ref_hum = hums[-1] if hums and self._ref_index >= 0 else None
+        self._max_gap = max(1, int(rate_hz))  # lost frames the hum phase follows (1 s)
+        self._last_seq: int | None = None
 
     def process(self, values: Sequence[int], seq: int | None = None, t: float = 0.0) -> Reading:
         """Run one frame through every channel and voice; returns the (reused) Reading."""
@@ -264,18 +279,38 @@ class Engine:
             # The decoder guarantees the count; this guards direct callers.
             raise ValueError(f"expected {self.n_values} values, got {len(values)}")
         views = r.channels
+        mains = self._mains
+        if mains is not None:
+            # The mains phase moves on by the frames since the last one, lost ones included.
+            steps = 1
+            if seq is not None:
+                last = self._last_seq
+                self._last_seq = seq
+                if last is not None and 1 < seq - last <= self._max_gap:
+                    steps = seq - last
+            mains.advance(steps)
         scale = 1.0
         if self._ref_index >= 0:
             ref_raw = float(values[self._ref_index])
             views[self._ref_index].raw = ref_raw
             ref = self._ref
             if ref is not None and 0.0 < ref_raw < math.inf:
-                scale = ref.ref_base / ref_raw
+                if self._ref_hum is not None:
+                    ref_raw = self._ref_hum.clean(ref_raw)
+                if ref_raw > 0.0:
+                    scale = ref.ref_base / ref_raw
+        for i in self._other:  # unused channels: their raw value is still reported
+            views[i].raw = float(values[i])
         for s in self._sensing:
             view = s.view
             raw = float(values[s.index])
             view.raw = raw
             x = raw * scale
+            hum = s.hum
+            if hum is not None and 0.0 < x < math.inf:
+                # Before the mean and the tracker: hum is not hand, and it does not
+                # average away over a few readings (the mean spans a fraction of a period).
+                x = hum.clean(x)
             ring = s.ring
             if ring and 0.0 < x < math.inf:
                 # Mean of the last k readings before the curve: the curve is not linear, so

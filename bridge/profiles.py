@@ -80,6 +80,7 @@ from bridge.baseline import BaselineSettings
 from bridge.calibrate import ChannelCalibration, resolution_report
 from bridge.errors import BridgeError, ConfigError
 from bridge.frames import FrameSettings
+from bridge.humfilter import MainsFilterSettings
 from bridge.mapping import LevelSettings, PitchSettings
 from bridge.outputs.midi import MidiSettings
 from bridge.outputs.midifile import MidiFileSettings
@@ -210,6 +211,7 @@ class Rig(_Model):
     outputs: OutputSettings = Field(default_factory=OutputSettings)
     smoothing: SmoothingSettings = Field(default_factory=SmoothingSettings)
     baseline: BaselineSettings = Field(default_factory=BaselineSettings)
+    mains_filter: MainsFilterSettings = Field(default_factory=MainsFilterSettings)
     control: ControlSettings | None = None
     sim: SimSettings | None = None
 

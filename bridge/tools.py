@@ -59,7 +59,7 @@ from .commands import (
     simulated_board,
     store_for,
 )
-from .errors import BridgeError, ConfigError, ControlError, DeviceError
+from .errors import ConfigError, ControlError, DeviceError
 from .mapping import NOTE_NAMES
 
 log = logging.getLogger(__name__)
@@ -194,7 +194,7 @@ class _Feed:
             for item in it:
                 if not self._put(item):
                     break
-        except BaseException as e:  # handed to the caller's thread by get()
+        except BaseException as e:  # noqa: BLE001 - re-raised in the caller's thread by get()
             self.error = e
         finally:
             close = getattr(it, "close", None)
@@ -276,7 +276,7 @@ def _note_ticks(ax: Any, lo: float, hi: float) -> None:
     """Y ticks at every C (and every F# when the range is small), labelled with note names."""
     step = 6 if hi - lo <= 30 else 12
     first = math.ceil(lo / step) * step
-    ticks = list(range(int(first), int(math.floor(hi)) + 1, step))
+    ticks = list(range(int(first), math.floor(hi) + 1, step))
     if ticks:
         ax.set_yticks(ticks, [f"{split_note(t)[0]} ({t})" for t in ticks])
 
@@ -663,10 +663,8 @@ def snapshot(d: Mapping[str, Any], t: float, source: str) -> dict[str, Any]:
 def engine_updates(frames: Iterable[Sequence[int]], engine: Any, every: int, profile: str
                    ) -> Iterator[dict[str, Any]]:
     """Every frame through ``engine``; every ``every``-th reading as a dict."""
-    n = 0
-    for values in frames:
+    for n, values in enumerate(frames, 1):
         reading = engine.process(values, None, time.monotonic())
-        n += 1
         if n % every == 0:
             d = reading.as_dict()
             d["profile"] = profile
@@ -1281,11 +1279,11 @@ def cmd_replay(args: argparse.Namespace) -> int:
         return 0
     by_type = ", ".join(f"{k} {v}" for k, v in sorted(result.midi_counts.items())) or "none"
     lines = [
-        f"\n{result.frames} frames, {result.duration_s:.1f} s of recording, computed in "
-        f"{result.compute_s:.2f} s; decoder drops {result.drops or 'none'}, "
-        f"{result.resyncs} resync(s), {result.silences} gap silence(s)",
-        f"  MIDI ({result.midi_mode} mode): {result.midi_messages} messages, "
-        f"{result.midi_bytes} bytes: {by_type}",
+        (f"\n{result.frames} frames, {result.duration_s:.1f} s of recording, computed in "
+         f"{result.compute_s:.2f} s; decoder drops {result.drops or 'none'}, "
+         f"{result.resyncs} resync(s), {result.silences} gap silence(s)"),
+        (f"  MIDI ({result.midi_mode} mode): {result.midi_messages} messages, "
+         f"{result.midi_bytes} bytes: {by_type}"),
         f"  OSC: {result.osc_datagrams} datagrams {result.osc_to}"
         + (f", send errors {result.osc_send_errors}" if result.osc_send_errors else ""),
     ]

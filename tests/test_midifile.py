@@ -126,8 +126,8 @@ def test_atomic_write_replaces_and_leaves_no_temp_files(tmp_path: Path) -> None:
 
 def test_unwritable_folder_is_a_device_error(tmp_path: Path) -> None:
     rec = MidiFileRecorder(tmp_path / "missing" / "take.mid")
-    rec.send(bytes.fromhex("903C40"), 0.0)
     with pytest.raises(DeviceError, match="cannot write MIDI file"):
+        rec.send(bytes.fromhex("903C40"), 0.0)  # the file is streamed: the first write fails
         rec.close()
 
 

@@ -4,7 +4,8 @@
 :class:`~bridge.outputs.midi.MidiSink` logic plays into a file: for listening back, for
 rendering offline with a synthesizer, or for tests. Each message is kept with its time;
 on close the file is written (type 0, one track, a tempo event, then the messages with
-delta times in ticks) in one atomic step, so a crash never leaves half a file.
+delta times in ticks), streamed to a temporary file and renamed into place on close,
+so a long set costs no memory and a crash never leaves half a file.
 
 Times come from the caller (``send(data, t)``, seconds on any clock, e.g. a reading's
 ``t``) or, when none is given, from ``time.monotonic``. The first message is at tick 0.
@@ -14,9 +15,11 @@ from __future__ import annotations
 
 import logging
 import os
+import tempfile
 import time
 from collections.abc import Callable
 from pathlib import Path
+from typing import BinaryIO
 
 from pydantic import Field
 
@@ -26,8 +29,25 @@ from bridge.outputs.midi import MidiSettings, MidiSink
 log = logging.getLogger(__name__)
 
 
+def _varlen(n: int) -> bytes:
+    """A Standard MIDI File variable-length quantity: 7 bits a byte, high bit = more follows
+    (Standard MIDI Files 1.0, "Variable Length Quantity"; e.g. 0x80 -> 81 00)."""
+    out = [n & 0x7F]
+    n >>= 7
+    while n:
+        out.append(0x80 | (n & 0x7F))
+        n >>= 7
+    return bytes(reversed(out))
+
+
 class MidiFileRecorder:
-    """A port that records raw messages with their times and writes an SMF on close."""
+    """A port that streams raw messages with their times into a Standard MIDI File.
+
+    Messages go to a temporary file beside the target as they arrive (buffered), so a
+    long set costs no memory; ``close()`` fills in the track length, syncs and renames
+    the file into place in one atomic step, so a crash never leaves half a file under the
+    real name.
+    """
 
     #: Tells :class:`MidiSink` to pass the reading's time along with each message.
     timed = True
@@ -53,9 +73,33 @@ class MidiFileRecorder:
         self._t0 = t0
         self._last_t: float | None = None
         self._last_tick = 0
-        self._events: list[tuple[int, bytes]] = []
+        self._count = 0
         self._given_times = False
+        self._file: BinaryIO | None = None
+        self._tmp = self.path  # set by _start to a fresh, unpredictable name
+        self._body = 0  # bytes of track data written so far
         self.closed = False
+
+    def _start(self) -> BinaryIO:
+        folder = self.path.parent if str(self.path.parent) else Path(".")
+        try:
+            # mkstemp: a new file (O_EXCL, owner-only) that no planted link can redirect
+            fd, tmp = tempfile.mkstemp(prefix=f".{self.path.name}.", suffix=".tmp", dir=folder)
+            self._tmp = Path(tmp)
+            f = os.fdopen(fd, "wb")  # held open until close()
+        except OSError as exc:
+            raise DeviceError(f"cannot write MIDI file {self.path}: {exc}") from exc
+        # MThd: type 0, one track, ticks per beat; MTrk with its length filled in at close.
+        f.write(b"MThd" + (6).to_bytes(4, "big") + (0).to_bytes(2, "big")
+                + (1).to_bytes(2, "big") + self.ticks_per_beat.to_bytes(2, "big"))
+        f.write(b"MTrk" + b"\0\0\0\0")
+        self._write(f, b"\x00\xff\x51\x03" + self.tempo.to_bytes(3, "big"))  # set_tempo
+        self._file = f
+        return f
+
+    def _write(self, f: BinaryIO, chunk: bytes) -> None:
+        f.write(chunk)
+        self._body += len(chunk)
 
     def send(self, data: bytes, t: float | None = None) -> None:
         """Record one complete message at time ``t`` (seconds; None: now, or the last time)."""
@@ -72,46 +116,41 @@ class MidiFileRecorder:
         tick = round((t - self._t0) * self.ticks_per_s)
         if tick < self._last_tick:  # never backwards: a file has only forward deltas
             tick = self._last_tick
+        f = self._file or self._start()
+        try:
+            self._write(f, _varlen(tick - self._last_tick) + bytes(data))
+        except OSError as exc:
+            raise DeviceError(f"cannot write MIDI file {self.path}: {exc}") from exc
         self._last_tick = tick
-        self._events.append((tick, bytes(data)))
+        self._count += 1
 
     @property
     def messages(self) -> int:
-        return len(self._events)
+        return self._count
 
     def close(self) -> None:
-        """Write the file (atomically) once; later calls do nothing."""
+        """Finish the file (atomically) once; later calls do nothing."""
         if self.closed:
             return
         self.closed = True
-        import mido
-
-        track = mido.MidiTrack()
-        track.append(mido.MetaMessage("set_tempo", tempo=self.tempo, time=0))
-        prev = 0
-        for tick, data in self._events:
-            track.append(mido.Message.from_bytes(data, time=tick - prev))
-            prev = tick
-        track.append(mido.MetaMessage("end_of_track", time=0))
-        smf = mido.MidiFile(type=0, ticks_per_beat=self.ticks_per_beat)
-        smf.tracks.append(track)
-        _write_atomic(self.path, smf)
-        log.info("MIDI file written: %s (%d messages)", self.path, len(self._events))
-
-
-def _write_atomic(path: Path, smf: object) -> None:
-    """Temporary file in the same folder, fsync, rename over the target, fsync the folder."""
-    folder = path.parent if str(path.parent) else Path(".")
-    tmp = folder / f".{path.name}.{os.getpid()}.tmp"
-    try:
-        with open(tmp, "wb") as f:
-            smf.save(file=f)  # type: ignore[attr-defined]
+        f = self._file or self._start()
+        try:
+            self._write(f, b"\x00\xff\x2f\x00")  # end_of_track
+            f.seek(18)  # 14 bytes of MThd, then "MTrk"
+            f.write(self._body.to_bytes(4, "big"))
             f.flush()
             os.fsync(f.fileno())
-        os.replace(tmp, path)
-    except OSError as exc:
-        tmp.unlink(missing_ok=True)
-        raise DeviceError(f"cannot write MIDI file {path}: {exc}") from exc
+            f.close()
+            os.replace(self._tmp, self.path)
+        except OSError as exc:
+            f.close()
+            self._tmp.unlink(missing_ok=True)
+            raise DeviceError(f"cannot write MIDI file {self.path}: {exc}") from exc
+        _fsync_folder(self.path.parent if str(self.path.parent) else Path("."))
+        log.info("MIDI file written: %s (%d messages)", self.path, self._count)
+
+
+def _fsync_folder(folder: Path) -> None:
     try:
         fd = os.open(folder, os.O_RDONLY)
     except OSError:
