@@ -216,7 +216,8 @@ def main(argv: Sequence[str] | None = None) -> int:
         if getattr(args, "json", False):
             print(json.dumps({"ok": False, "error": str(e), "exit": code}))
         else:
-            print(f"fieldbridge: {textwrap.fill(str(e), 100, subsequent_indent='  ')}",
+            print("fieldbridge: " + textwrap.fill(str(e), 100, subsequent_indent="  ",
+                                                 break_on_hyphens=False, break_long_words=False),
                   file=sys.stderr)
         return code
     except KeyboardInterrupt:

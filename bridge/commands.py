@@ -90,6 +90,7 @@ def emit(args: argparse.Namespace, obj: Any, text: str) -> None:
 def simulated_board(rig: Any, performance: Any) -> Iterator[str]:
     """A simulated board for this rig on a pseudo-terminal; yields the path to open."""
     import os
+    import shutil
     import tempfile
 
     from .sim import SimBoard, SimSettings
@@ -97,13 +98,15 @@ def simulated_board(rig: Any, performance: Any) -> Iterator[str]:
 
     s = rig.sim or SimSettings(window_s=rig.board.window_s)
     board = SimBoard(s, performance)
-    link = os.path.join(tempfile.mkdtemp(prefix="fieldbridge-sim-"), "board")
+    folder = tempfile.mkdtemp(prefix="fieldbridge-sim-")
+    link = os.path.join(folder, "board")
     pty = PtyBoard(board.next_bytes, s.window_s, link_path=link)
     pty.start()
     try:
         yield link
     finally:
         pty.stop()
+        shutil.rmtree(folder, ignore_errors=True)
 
 
 def local_frames(rig: Any, url: str | None = None, stop: threading.Event | None = None

@@ -3,7 +3,7 @@
 Hum from the mains wiring frequency-modulates the antenna oscillators. A counting window
 of whole mains periods integrates it away (DOMAIN.md section 2); a short window (1 ms at
 1000 frames/s) cannot, and the hum then swings every reading by tens of ppm, which is
-tens of cents before smoothing, and it makes a speed-adaptive smoother open up.
+tens of cents before smoothing and feeds the speed estimate of the adaptive smoother.
 
 The frequency is known, so the hum can be estimated and subtracted instead of filtered.
 Per channel, with reference phasors cos(k w n) and sin(k w n) for the mains harmonic k
@@ -13,39 +13,42 @@ the sampled phasor aliases the same way)::
     h[n] = sum_k  A_k cos(k w n) + B_k sin(k w n)      the hum estimate
     y[n] = x[n] - h[n]                                 the output: no delay, no smoothing
     e[n] = clip(y[n] - m[n])                           m: a short average of y (below)
-    A_k += 2 g e[n] cos(k w n),  B_k += 2 g e[n] sin(k w n),   g = 1 / (tau * rate)
+    A_k += 2 g_k e[n] cos(k w n),  B_k += 2 g_k e[n] sin(k w n)
+    g_k = g / Re H(k w),  g = 1 / (tau * rate)         H: the response of y - m
 
 This is the adaptive noise canceller with a sinusoidal reference (Widrow et al.,
 "Adaptive noise cancelling: principles and applications", Proc. IEEE 63(12), 1975); the
 update is the LMS rule, which for a sinusoid is synchronous demodulation: A and B follow
 the in-phase and quadrature amplitudes with time constant ``tau`` (a step of 2g on a
-regressor whose mean square is 1/2 closes a fraction g of the gap each frame, and
-g = 1/(tau rate) is a time constant of tau). As a linear filter it is a notch
-of width about 1/(pi tau) Hz at each mains harmonic (Widrow et al. 1975), so the hand
-signal (all below about 10 Hz, vibrato 5-7 Hz) passes with no delay: the output of a
-frame is that frame's reading minus a sinusoid fixed by the past, and a step in the
-reading is a step in the output in the same frame.
+regressor whose mean square is 1/2 closes a fraction g of the gap each frame, which is
+a time constant of tau; at the Nyquist frequency the cosine's mean square is 1 and the
+sine is 0, and the step is g). As a linear filter it is a notch of width about
+1/(pi tau) Hz at each mains harmonic (Widrow et al. 1975), so the hand signal (all below
+about 10 Hz, vibrato 5-7 Hz) passes with no delay: the output of a frame is that
+frame's reading minus a sinusoid fixed by the past, and a step in the reading is a step
+in the output in the same frame.
 
-Why the update looks at ``y - m`` and clips it. The reading's level (tens of thousands of
-ticks) and the hand's movements are not hum, but a step has some energy at every
-frequency: a step of S moves A and B by about 2 g S / (w per frame) (0.6 % of S at
-1000 frames/s with tau 1 s). Subtracting a short average m (time constant 1/(2 pi f_m),
-f_m a tenth of the lowest hum frequency, so the hum itself keeps 99.5 % of its size and
-turns by under 6 degrees, which moves the convergence speed, not the end point) removes
-the level; clipping e at ``CLIP`` times its running mean absolute value (a Huber-type
-bounded influence) makes a hand arriving (a step of several percent) disturb the
-estimate no more than a noise burst would. There is no "freeze while the hand moves":
-a vibrato would freeze it for good, and a slow, clipped update needs none.
+Why the update looks at ``y - m`` and clips it. The reading's level (some 10^5 ticks)
+and the hand's movements are not hum, but a step has some energy at every frequency: a
+step of S moves A and B by about 2 g S / (w per frame), 1.3 % of S at 1000 frames/s with
+tau 0.5 s. Subtracting m, a first-order average with its corner at a tenth of the lowest
+hum frequency, removes the level; the hum keeps 98 % of its size in y - m and turns by
+under 6 degrees, which changes the convergence speed (made up by the 1/Re H in g_k), not
+the end point. Clipping e at ``CLIP`` times its running mean absolute value (a
+Huber-type bounded influence) makes a hand arriving (a step of several percent) disturb
+the estimate no more than a noise burst would. There is no "freeze while the hand
+moves": a vibrato would freeze it for good, and a slow, clipped update needs none.
 
 Limits, stated plainly. The reference runs at the nominal 50 or 60 Hz; the grid
 wanders (typically by some hundredths of a hertz), which the estimate follows as a
-slowly turning phasor: the residual is about 2 pi df tau of the hum (-24 dB at
-df = 0.02 Hz, tau 0.5 s; -10 dB at 0.1 Hz, tau 1 s) [first-order tracking error,
-textbook]. A shorter ``time_constant_s`` follows better and lets more noise into the
-estimate (a still hand is hardly affected: the estimate's noise sits at 50 Hz, far above
-the smoother's cutoff). Frames lost on the link shift the phase unless the engine is told
-(``MainsReference.advance(frames)``). The hum estimate is per channel: a hand that
-brings its own hum changes it, and the canceller re-converges in about ``tau``.
+slowly turning phasor, leaving about 2 pi df tau of the hum (-24 dB at df = 0.02 Hz
+and -10 dB at 0.1 Hz with tau 0.5 s) [first-order tracking error, textbook; the
+simulator with its hum at 50.1 Hz agrees]. A shorter ``time_constant_s`` follows better
+and lets more noise into the estimate (a still hand hardly notices: that noise sits at
+50 Hz, far above the smoother's cutoff). After frames lost on the link the engine turns
+the phase on by the gap in the board's sequence numbers (``MainsReference.advance``);
+without sequence numbers a loss shifts the phase and the estimate re-converges in
+about ``tau``, as it does when a hand brings hum of its own (the estimate is per channel).
 
     ref = MainsReference([50.0], rate_hz=1000.0)      # one per engine
     hum = HumCanceller(ref, time_constant_s=0.5)      # one per channel
@@ -120,7 +123,9 @@ class MainsFilterSettings(BaseModel):
 
     ``time_constant_s``: how fast the estimate follows (0.5-2 s is sensible): longer is
     steadier and disturbed less by hand moves; shorter follows a wandering grid
-    frequency and a changing hum better.
+    frequency and a changing hum better. On the simulated 1000 frames/s board 0.25 to
+    2 s all leave the same still-hand pitch noise; 0.5 s converges within a couple of
+    seconds of start-up and keeps a grid 0.05 Hz off nominal at -16 dB.
     """
 
     model_config = ConfigDict(extra="forbid", allow_inf_nan=False)
@@ -258,7 +263,7 @@ class HumCanceller:
         "time_constant_s",
     )
 
-    def __init__(self, ref: MainsReference, time_constant_s: float = 1.0) -> None:
+    def __init__(self, ref: MainsReference, time_constant_s: float = 0.5) -> None:
         if not (time_constant_s > 0.0 and math.isfinite(time_constant_s)):
             raise ConfigError(f"time_constant_s must be positive, got {time_constant_s}")
         self.ref = ref
@@ -266,14 +271,22 @@ class HumCanceller:
         rate = ref.rate_hz
         n = len(ref)
         self._g = 1.0 / max(1.0, time_constant_s * rate)
-        # LMS step 1/(tau * rate * power): each amplitude then follows with time constant tau.
-        self._gain_cos = [self._g / p if p > 0.0 else 0.0 for p in ref.power_cos]
-        self._gain_sin = [self._g / p if p > 0.0 else 0.0 for p in ref.power_sin]
         lowest = min((alias_hz(f, rate) for f in ref.freqs_hz), default=rate / 2.0)
         # The level follower: a first-order low-pass at a tenth of the lowest hum frequency.
-        self._g_level = 1.0 - math.exp(-_TWO_PI * 0.1 * lowest / rate)
+        g_level = 1.0 - math.exp(-_TWO_PI * 0.1 * lowest / rate)
+        self._g_level = g_level
+        # LMS step g / (power * Re H): each amplitude then follows with time constant tau.
+        # H is the response of e = y - level at the hum frequency (H(z) = 1 - a/(1 - (1-a)/z)
+        # for the follower's a); by averaging, the estimate's error shrinks by g Re H a frame.
+        self._gain_cos = []
+        self._gain_sin = []
+        for f, pc, ps in zip(ref.freqs_hz, ref.power_cos, ref.power_sin):
+            z = complex(math.cos(_TWO_PI * f / rate), math.sin(_TWO_PI * f / rate))
+            re_h = (1.0 - g_level / (1.0 - (1.0 - g_level) / z)).real
+            self._gain_cos.append(self._g / (pc * re_h) if pc > 0.0 else 0.0)
+            self._gain_sin.append(self._g / (ps * re_h) if ps > 0.0 else 0.0)
         self._g_scale = 1.0 / max(1.0, SCALE_TAU * time_constant_s * rate)
-        self._warmup = max(1, math.ceil(WARMUP_LEVEL_TAUS / self._g_level))
+        self._warmup = max(1, math.ceil(WARMUP_LEVEL_TAUS / g_level))
         self._a = [0.0] * n
         self._b = [0.0] * n
         self._level = 0.0
@@ -293,14 +306,6 @@ class HumCanceller:
     def amplitudes(self) -> list[float]:
         """The estimated hum amplitude at each frequency (reading units, peak)."""
         return [math.hypot(a, b) for a, b in zip(self._a, self._b)]
-
-    def hum(self) -> float:
-        """The hum estimate for the current frame."""
-        ref = self.ref
-        h = 0.0
-        for i, c in enumerate(ref.cos):
-            h += self._a[i] * c + self._b[i] * ref.sin[i]
-        return h
 
     def clean(self, x: float) -> float:
         """The reading with the hum estimate subtracted; then learn from it."""

@@ -1258,6 +1258,10 @@ def cmd_replay(args: argparse.Namespace) -> int:
             parts.append(f"{v['name']}: {pitch}  level {v['level']:.2f}")
         print(f"  {line['t']:6.0f} s  " + "   ".join(parts), flush=True)
 
+    if texts and args.osc:
+        from .cli import SAFETY
+
+        print(SAFETY)  # the OSC goes to a real receiver, which may drive a synth
     if texts:
         print(f"Replaying {path} through venue {setup.profile}"
               + (" in real time" if args.realtime else "") + " ...")
@@ -1444,7 +1448,7 @@ def register(cli: Any, common: Any) -> None:
     p.add_argument("file", help="a recording name (in recordings/) or a path")
     p.add_argument("--venue", help="venue profile to play it through (default: the active one)")
     p.add_argument("--realtime", action="store_true", help="at the recorded pace, not at once")
-    p.add_argument("--every", type=_count,
+    p.add_argument("--every", type=_count, metavar="N",
                    help="--json: one record every N frames (default: ten a second)")
     p.add_argument("--midi", metavar="OUT.mid", help="also write a Standard MIDI File")
     p.add_argument("--plot", metavar="OUT.png", help="also draw pitch and level over time")

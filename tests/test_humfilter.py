@@ -30,15 +30,17 @@ from bridge.humfilter import (
     alias_hz,
     make_cancellers,
 )
-from bridge.pipeline import Engine, VoiceSettings
+from bridge.pipeline import ChannelSettings, Engine, VoiceSettings
 from bridge.profiles import Store, load_rig
 from bridge.sim import DriftSettings, HumSettings, Performance, SimBoard, SimSettings
-from bridge.soundcheck import fit_rig, simulated_holds
+from bridge.soundcheck import RigCalibration, fit_rig, simulated_holds
 
 RATE = 1000.0
 LEVEL = 350_000.0  # a period reading: 48 MHz ticks of ~555 kHz scaled by 4096, roughly
 HUM = 35.0  # 100 ppm of it, the simulator's default hum
 EXAMPLES = Path(__file__).resolve().parent.parent / "profiles"
+
+FastRig = tuple[SimSettings, list[ChannelSettings], VoiceSettings, RigCalibration]
 
 
 def run(freqs: list[float], x: np.ndarray, tau: float = 0.5, rate: float = RATE) -> np.ndarray:
@@ -153,6 +155,32 @@ def test_hum_at_the_nyquist_frequency_is_cancelled() -> None:
     assert db(np.std(y[last]) / np.std(x[last])) < -30.0
 
 
+@pytest.mark.parametrize(("f", "rate"), [(50.0, 1000.0), (60.0, 1000.0), (50.0, 100.0)])
+def test_the_hum_left_decays_with_the_set_time_constant(f: float, rate: float) -> None:
+    # Widrow et al. 1975: with a sinusoidal reference the LMS error decays exponentially;
+    # the step is scaled so that its time constant is time_constant_s (here 2 s), also
+    # at 50 Hz sampled 100 times a second (the Nyquist frequency, where the sine is 0).
+    tau = 2.0
+    n = int(4 * rate)
+    x = LEVEL + HUM * np.cos(2.0 * np.pi * f * np.arange(n) / rate + 0.4)
+    y = run([f], x, tau=tau, rate=rate)
+    w = int(0.1 * rate)  # 5 or 6 whole cycles
+
+    def left(t: float) -> float:
+        i = int(t * rate)
+        return float(np.std(y[i : i + w]))
+
+    measured = 2.0 / math.log(left(1.0) / left(3.0))  # seconds, from 1 s to 3 s
+    assert measured == pytest.approx(tau, rel=0.1)
+
+
+def test_a_phasor_knocked_off_the_unit_circle_returns_to_it() -> None:
+    ref = MainsReference([50.0], RATE)
+    ref.cos[0], ref.sin[0] = 1.2, 0.1  # as if rounding had piled up
+    ref.advance(50)
+    assert math.hypot(ref.cos[0], ref.sin[0]) == pytest.approx(1.0, abs=1e-12)
+
+
 def test_hum_appearing_after_a_perfectly_steady_stretch_is_learnt() -> None:
     # A reading with no noise at all must not leave the canceller unable to learn.
     n = int(10 * RATE)
@@ -257,7 +285,7 @@ def test_disabled_settings_make_no_canceller() -> None:
 
 
 @pytest.fixture(scope="module")
-def fast_rig():
+def fast_rig() -> FastRig:
     """A period board at 1000 frames/s (1 ms windows), drift off, calibrated by a
     simulated soundcheck; hum at the simulator's default 100 ppm and 50 Hz."""
     s = SimSettings(kind="period", window_s=0.001, drift=DriftSettings(mode="off"), seed=11)
@@ -268,7 +296,7 @@ def fast_rig():
     return s, channels, voice, cal
 
 
-def _positions(rig, sim: SimSettings, mains: MainsFilterSettings | None, seqs=None):
+def _positions(rig: FastRig, sim: SimSettings, mains: MainsFilterSettings | None) -> np.ndarray:
     s, channels, voice, cal = rig
     perf = Performance(seed=5).silence(0.3).glide(0.2, pitch=0.2, volume=0.25).hold(3.5)
     n = round(perf.duration / sim.window_s)
@@ -276,12 +304,11 @@ def _positions(rig, sim: SimSettings, mains: MainsFilterSettings | None, seqs=No
     eng = Engine(channels, [voice], cal.channels, rate_hz=RATE, mains_filter=mains)
     pos = np.empty(n)
     for i, row in enumerate(values.tolist()):
-        seq = None if seqs is None else seqs[i]
-        pos[i] = eng.process(row, seq=seq).channels[0].position
+        pos[i] = eng.process(row, seq=i).channels[0].position
     return pos
 
 
-def test_engine_removes_the_simulators_hum(fast_rig) -> None:
+def test_engine_removes_the_simulators_hum(fast_rig: FastRig) -> None:
     s = fast_rig[0]
     quiet = s.model_copy(update={"hum": HumSettings(ppm=0.0)})
     on = MainsFilterSettings().with_board_mains(50)
@@ -298,7 +325,7 @@ def test_engine_removes_the_simulators_hum(fast_rig) -> None:
     assert np.std((idle - target)[last]) < 0.1 * np.std(target[last])
 
 
-def test_engine_follows_the_mains_phase_across_lost_frames(fast_rig) -> None:
+def test_engine_follows_the_mains_phase_across_lost_frames(fast_rig: FastRig) -> None:
     s = fast_rig[0]
     n = round(4.0 / s.window_s)
     drop = set(range(3, n, 97))  # frames lost on the link, about 1 %
@@ -326,7 +353,7 @@ def test_engine_follows_the_mains_phase_across_lost_frames(fast_rig) -> None:
     assert run_kept(True) < 0.5 * run_kept(False)
 
 
-def test_engine_without_the_setting_is_unchanged(fast_rig) -> None:
+def test_engine_without_the_setting_is_unchanged(fast_rig: FastRig) -> None:
     s = fast_rig[0]
     a = _positions(fast_rig, s, None)
     b = _positions(fast_rig, s, MainsFilterSettings(enabled=False, mains_hz=50))
