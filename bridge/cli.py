@@ -18,7 +18,6 @@ import json
 import logging
 import sys
 import textwrap
-import time
 from collections.abc import Callable, Sequence
 from typing import Any
 

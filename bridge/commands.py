@@ -12,7 +12,6 @@ import json
 import logging
 import sys
 import threading
-import time
 from collections.abc import Iterator, Sequence
 from contextlib import contextmanager
 from pathlib import Path
@@ -21,7 +20,7 @@ from typing import Any
 import numpy as np
 
 from .control import ControlClient, socket_path
-from .errors import BridgeError, CalibrationError, ConfigError, ControlError, DeviceError
+from .errors import CalibrationError, ConfigError, ControlError, DeviceError
 
 log = logging.getLogger(__name__)
 
@@ -144,7 +143,6 @@ def cmd_run(args: argparse.Namespace) -> int:
     """Start the daemon with the store's rig and active venue profile."""
     from .daemon import Daemon
     from .notify import Notifier
-    from .sim import scenario
 
     store = store_for(args)
     store_name = args.venue
@@ -177,7 +175,6 @@ def cmd_run(args: argparse.Namespace) -> int:
     from .cli import _summary
 
     print(_summary(daemon, counters), file=sys.stderr)
-    del scenario
     return 0
 
 

@@ -27,7 +27,7 @@ import math
 from collections.abc import Mapping, Sequence
 from typing import Literal
 
-from pydantic import BaseModel, ConfigDict, Field, model_validator
+from pydantic import BaseModel, ConfigDict, Field
 
 from .baseline import BaselineSettings, BaselineTracker, ReferenceCorrector
 from .calibrate import ChannelCalibration

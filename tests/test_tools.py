@@ -1,4 +1,4 @@
-"""bridge/tools.py in-process: recording names, the checks, the monitor's updates, replay.
+"""bridge/tools.py, checks.py, monitor.py and replay.py in-process: recording names, the checks, the monitor's updates, replay.
 
 Real parts throughout: pseudo-terminals for serial devices, real files and sockets, the
 real control server, a JACK server for the JACK check (a peer, skipped without jackd
@@ -33,23 +33,18 @@ from bridge.outputs.osc import OscSettings
 from bridge.profiles import Store
 from bridge.recording import RecordingHeader, RecordingWriter
 from bridge.sim import Performance, SimBoard, scenario
-from bridge.tools import (
-    _END,
+from bridge.checks import (
     Finding,
-    _bar,
-    _Feed,
     check_control,
     check_exit_code,
     check_files,
     check_midi,
     check_osc,
     check_serial,
-    engine_updates,
-    recording_path,
-    replay_recording,
-    snapshot,
-    split_note,
 )
+from bridge.monitor import _bar, engine_updates, snapshot
+from bridge.replay import replay_recording
+from bridge.tools import END_OF_FEED, Feed, recording_path, split_note
 
 PROFILES = Path(__file__).resolve().parents[1] / "profiles"
 
@@ -168,7 +163,7 @@ def test_a_regular_file_is_not_a_serial_device(tmp_path: Path) -> None:
 # Imports first: this machine's Python may live where the other user cannot read.
 _AS_OTHER_USER = """
 import json, os, sys
-from bridge.tools import check_serial
+from bridge.checks import check_serial
 os.setgroups([]); os.setgid(65534); os.setuid(65534)
 print(json.dumps(check_serial(sys.argv[1]).as_dict()))
 """
@@ -370,7 +365,7 @@ def test_a_feed_hands_over_items_and_the_producers_error() -> None:
         yield 2
         raise DeviceError("the board went away")
 
-    feed = _Feed(produce(), threading.Event(), "test-feed").start()
+    feed = Feed(produce(), threading.Event(), "test-feed").start()
     assert feed.get(5.0) == 1
     assert feed.get(5.0) == 2
     with pytest.raises(DeviceError, match="went away"):
@@ -387,14 +382,14 @@ def test_a_feed_stops_a_producer_that_keeps_going() -> None:
             n += 1
             yield n
 
-    feed = _Feed(produce(), stop, "test-feed").start()
+    feed = Feed(produce(), stop, "test-feed").start()
     assert feed.get(5.0) == 1
     feed.stop()
     assert stop.is_set()
     item = feed.get(1.0)
     while isinstance(item, int):  # what was queued before the stop, then the end
         item = feed.get(1.0)
-    assert item is _END
+    assert item is END_OF_FEED
 
 
 # ---------------------------------------------------------------------- replay
