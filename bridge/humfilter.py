@@ -309,7 +309,7 @@ class HumCanceller:
 
     def clean(self, x: float) -> float:
         """The reading with the hum estimate subtracted; then learn from it."""
-        if not math.isfinite(x):
+        if x - x != 0.0:  # NaN or infinite
             return x
         ref = self.ref
         cos_, sin_, a_, b_ = ref.cos, ref.sin, self._a, self._b
@@ -321,20 +321,14 @@ class HumCanceller:
             for i in range(k):
                 h += a_[i] * cos_[i] + b_[i] * sin_[i]
         y = x - h
-        n = self._n
-        self._n = n + 1
-        if n == 0:
-            self._level = y
+        if self._n < self._warmup:
+            self._start(y)
             return y
-        level = self._level + self._g_level * (y - self._level)
+        level = self._level
+        level += self._g_level * (y - level)
         e = y - level
         ae = e if e >= 0.0 else -e
         scale = self._scale
-        if n < self._warmup:
-            # Learn the level and the size of the residual before trusting either.
-            self._level = level
-            self._scale = scale + (ae - scale) / n
-            return y
         floor = SCALE_FLOOR * (level if level >= 0.0 else -level)
         lim = SCALE_LIMIT * scale + floor
         scale += self._g_scale * ((ae if ae < lim else lim) - scale)
@@ -351,13 +345,26 @@ class HumCanceller:
             for i in range(k):
                 a_[i] += gc[i] * e * cos_[i]
                 b_[i] += gs[i] * e * sin_[i]
-        if not math.isfinite(level + scale + h):
+        check = level + scale + h
+        if check - check != 0.0:
             # Absurd input (near the float range) overflowed a sum: start again.
             self.reset()
             return x
         self._level = level
         self._scale = scale
         return y
+
+    def _start(self, y: float) -> None:
+        """The first frames: learn the level and the size of the residual, nothing else."""
+        n = self._n
+        self._n = n + 1
+        if n == 0:
+            self._level = y
+            return
+        level = self._level + self._g_level * (y - self._level)
+        e = y - level
+        self._level = level
+        self._scale += ((e if e >= 0.0 else -e) - self._scale) / n
 
 
 def make_cancellers(

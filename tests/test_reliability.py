@@ -369,7 +369,7 @@ def stream_of(draw: st.DrawFn, piece: Callable[[int], st.SearchStrategy[bytes]])
     return b"".join(parts)
 
 
-@settings(max_examples=300, deadline=None, suppress_health_check=[HealthCheck.too_slow])
+@settings(max_examples=200, deadline=None, suppress_health_check=[HealthCheck.too_slow])
 @given(
     stream=stream_of(text_piece),
     leading_seq=st.booleans(),
@@ -390,7 +390,7 @@ def test_text_decoder_counts_exactly_what_the_protocol_model_predicts(
     assert dec.frames_ok == len(got)
 
 
-@settings(max_examples=300, deadline=None, suppress_health_check=[HealthCheck.too_slow])
+@settings(max_examples=200, deadline=None, suppress_health_check=[HealthCheck.too_slow])
 @given(
     stream=stream_of(binary_piece),
     synced=st.booleans(),
@@ -463,7 +463,7 @@ def mixed_with_valid(draw: st.DrawFn, fmt: str) -> tuple[bytes, list[Frame]]:
     return b"".join(parts), expected
 
 
-@settings(max_examples=200, deadline=None, suppress_health_check=[HealthCheck.too_slow])
+@settings(max_examples=120, deadline=None, suppress_health_check=[HealthCheck.too_slow])
 @given(
     fmt=st.sampled_from(["text", "binary"]),
     data=st.data(),
@@ -684,7 +684,7 @@ def test_osc_destination_that_refuses_packets_is_survived_and_counted(
         probe.recv(16)
     probe.close()
 
-    board = boards.pty(demo_cal.sim, held())
+    board = boards.pty(demo_cal.sim, held(rest_s=0.1))
     osc = OscSink(OscSettings(destinations=[f"127.0.0.1:{closed}", osc_listener.destination]))
     run = run_daemon(setup_for(board.path), [osc, MidiSink(MidiSettings(), [recording_port])])
     recording_port.wait_for(has_note_on, 10.0, "a note-on")
@@ -732,7 +732,7 @@ def test_midi_port_raising_mid_send_keeps_the_daemon_playing_and_note_offs_attem
     held: Any,
 ) -> None:
     good, flaky = recording_port, FlakyPort()
-    board = boards.pty(demo_cal.sim, held())
+    board = boards.pty(demo_cal.sim, held(rest_s=0.1))
     sink = MidiSink(MidiSettings(), [flaky, good])
     run = run_daemon(_fast(setup_for(board.path)), [sink])
     good.wait_for(has_note_on, 10.0, "a note-on")
@@ -781,7 +781,7 @@ def test_loader_raising_config_error_keeps_the_profile_and_the_reply_says_why(
     demo_cal: Any, boards: Any, setup_for: Any, run_daemon: Any, recording_port: Any,
     held: Any, short_dir: Path,
 ) -> None:
-    board = boards.pty(demo_cal.sim, held())
+    board = boards.pty(demo_cal.sim, held(rest_s=0.1))
     why = "venue 'harbour' not activated: channels.pitch.noise: must be 0 or more (found -1)"
 
     def loader(name: str | None) -> Setup:
@@ -878,7 +878,7 @@ def test_venue_file_corrupted_on_disk_is_refused_by_activate_and_reload(
 def test_random_damage_to_a_venue_file_never_stops_the_daemon(
     store: Store, boards: Any, run_daemon: Any, recording_port: Any, short_dir: Path,
 ) -> None:
-    """Forty random edits of a venue file (byte flips, cuts, lost or doubled lines), each
+    """Twenty-four random edits of a venue file (byte flips, cuts, lost or doubled lines), each
     followed by ``activate``: every reply is a refusal with a reason or a switch, and the
     daemon's state always agrees with the reply."""
     rig = store.load_rig()
@@ -894,7 +894,7 @@ def test_random_damage_to_a_venue_file_never_stops_the_daemon(
     original = target.read_bytes()
     rng = random.Random(20240607)
     refused = switched = 0
-    for i in range(40):
+    for i in range(24):
         data = bytearray(original)
         lines = original.split(b"\n")
         how = i % 4
@@ -923,7 +923,7 @@ def test_random_damage_to_a_venue_file_never_stops_the_daemon(
         target.write_bytes(original)
         assert client.request({"op": "activate", "name": "tin-lantern"})["ok"] is True
         assert not run.done.is_set()
-    assert refused >= 20  # most damage is caught; a harmless edit may still load
+    assert refused >= 12  # most damage is caught; a harmless edit may still load
     frames = run.daemon.counters.frames
     run.wait_frames(10)
     assert run.daemon.counters.frames > frames
@@ -1043,6 +1043,9 @@ def test_save_killed_at_200_random_moments_never_loses_the_profile(tmp_path: Pat
         store.save_venue("tin-lantern", m)
         rendered.append(path.read_bytes())
     readable = {m.notes for m in models}
+    for data in rendered:  # each version, written whole, is a valid profile
+        atomic_write(path, data)
+        assert store.load_venue("tin-lantern").notes in readable
     rng = random.Random(1729)
     r, w = os.pipe()
     os.set_blocking(r, False)
@@ -1068,10 +1071,12 @@ def test_save_killed_at_200_random_moments_never_loses_the_profile(tmp_path: Pat
                 completed += len(os.read(r, 1 << 16))
             except BlockingIOError:
                 pass
-            # The profile is there, not empty, parses, and is one of the two versions whole.
+            # The profile is there, not empty, and is one of the two versions whole (both
+            # load: checked below and on every tenth trial through the store itself).
             data = path.read_bytes()
             assert data in rendered, f"trial {trial}: the file is neither version"
-            assert store.load_venue("tin-lantern").notes in readable
+            if trial % 10 == 0:
+                assert store.load_venue("tin-lantern").notes in readable
             temporaries = {p.name for p in path.parent.iterdir() if p.name.endswith(".tmp")}
             mid_write += bool(temporaries - left_over)  # this kill landed inside a write
             left_over |= temporaries

@@ -77,7 +77,7 @@ def _start(private_jack: dict[str, JackServer], demo_cal: Any, boards: Any, setu
     # Our JACK port and, beside it, the in-memory port: the sink writes to both.
     sink = MidiSink(settings, [*open_ports(settings), recording_port])
     ours = f"{client}:out"
-    board = boards.pty(demo_cal.sim, held())
+    board = boards.pty(demo_cal.sim, held(rest_s=0.1))
     setup = setup_for(board.path)
     setup.source = setup.source.model_copy(update={"backoff_start_s": 0.01,
                                                    "backoff_max_s": 0.05})
