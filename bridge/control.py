@@ -83,6 +83,8 @@ def parse_request(line: bytes) -> Status | Activate | Rebase | Reload | Watch:
         data = json.loads(line.decode("utf-8"))
     except (UnicodeDecodeError, json.JSONDecodeError) as e:
         raise ControlError(f"not JSON: {e}") from None
+    except RecursionError:  # deeply nested arrays or objects, well under the size limit
+        raise ControlError("request nested too deeply") from None
     try:
         return _REQUEST.validate_python(data)
     except ValidationError as e:

@@ -42,16 +42,14 @@ import textwrap
 import threading
 import time
 import uuid
-from collections.abc import Callable, Iterator, Sequence
+from collections.abc import Callable, Sequence
 from pathlib import Path
 from typing import Any
 
 import mido
 import pytest
-from hypothesis import HealthCheck, assume, given, settings
+from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
-
-from conftest import RecordingPort  # tests/conftest.py: the in-memory RawPort
 
 from bridge.commands import setup_for as store_setup
 from bridge.control import ControlClient
@@ -72,9 +70,10 @@ from bridge.outputs.midi import MidiSettings, MidiSink
 from bridge.outputs.osc import OscSettings, OscSink
 from bridge.pipeline import Engine, VoiceSettings
 from bridge.profiles import Store, VenueProfile, load_venue
-from bridge.sim import Performance, SimBoard, SimSettings
+from bridge.sim import Performance, SimSettings
 from bridge.sources import LinkState, SerialSource, SourceSettings
-from bridge.storage import atomic_write, backup_path, render_model
+from bridge.storage import atomic_write, backup_path
+from conftest import RecordingPort  # tests/conftest.py: the in-memory RawPort
 
 REPO = Path(__file__).resolve().parents[1]
 EXAMPLES = REPO / "profiles"
@@ -575,7 +574,7 @@ def _fast(setup: Setup) -> Setup:
 
 def test_pty_board_unplugged_and_replugged_100_times_under_the_daemon(
     demo_cal: Any, boards: Any, setup_for: Any, run_daemon: Any, recording_port: Any,
-    held: Any,
+    held: Any, until: Any,
 ) -> None:
     """The cable pulled a hundred times in a row, through a stable link path (as
     /dev/serial/by-id): every time the held note ends, and play resumes in the same
@@ -598,11 +597,10 @@ def test_pty_board_unplugged_and_replugged_100_times_under_the_daemon(
         assert d.source.state in (LinkState.LOST, LinkState.CONNECTING)
         port.mark("cycle")
         board.replug()
-        wait = time.monotonic() + 10.0
-        while d.source.generation == gen:  # the port is opened again through the link
-            assert time.monotonic() < wait, f"no reopen after replug {cycle}"
-            assert not run.done.is_set(), f"daemon ended: {run.error!r}"
-            threading.Event().wait(0.005)
+        # The port is opened again through the link (generation counts opens).
+        until(lambda: d.source.generation != gen or run.done.is_set(), 10.0,
+              f"a reopen after replug {cycle}")
+        assert not run.done.is_set(), f"daemon ended: {run.error!r}"
     port.wait_for(lambda m: has_note_on(m[port.marks["cycle"]:]), 10.0, "a note-on at the end")
     assert d.source.stats.reconnects >= 100
     counters = run.stop()
@@ -694,10 +692,15 @@ def test_osc_destination_that_refuses_packets_is_survived_and_counted(
                           "100 bundles at the listening destination")
     counters = run.stop()
     assert counters.sink_errors == 0  # nothing raised out of the OSC output
-    # Every bundle was handed to the network for both destinations, the refusing one too:
-    # one datagram per frame per destination (the bundle fits one datagram).
+    # Every bundle was handed to the network and counted for both destinations, the
+    # refusing one too: one datagram per frame per destination (a bundle fits one).
+    # (An unconnected UDP socket is not told of the refusal, bridge/outputs/osc.py.)
     assert osc.datagrams >= 2 * counters.frames
-    assert osc.send_errors.get(f"127.0.0.1:{closed}", 0) <= counters.frames
+    # The destination that listens got every frame's bundle, then the final silence.
+    osc_listener.wait_for(lambda rs: sum(r.address == lead for r in rs) >= counters.frames,
+                          5.0, "a level for every frame at the listening destination")
+    osc_listener.wait_for(lambda rs: [r.args[0] for r in rs if r.address == lead][-1] == 0.0,
+                          5.0, "level 0 at shutdown")
     assert osc_listener.errors == []
 
 
@@ -763,6 +766,57 @@ def test_midi_port_raising_mid_send_keeps_the_daemon_playing_and_note_offs_attem
         (held_keys.add if on else held_keys.discard)(key)
     assert held_keys == set()
     assert good.sounding(good.snapshot()) == {}
+
+
+class OnceFailingPort(RecordingPort):
+    """A RecordingPort whose next send fails once after :meth:`arm` (a full buffer, a
+    momentary error of the MIDI system); only what did not fail is recorded (heard)."""
+
+    def __init__(self) -> None:
+        super().__init__("once-failing")
+        self.armed = False
+
+    def arm(self) -> None:
+        self.armed = True
+
+    def send(self, data: bytes) -> None:
+        if self.armed:
+            self.armed = False
+            raise DeviceError("MIDI output buffer full")
+        super().send(data)
+
+
+def _lead(note: float, level: float, present: bool, t: float) -> Any:
+    from bridge.pipeline import Reading, VoiceView
+
+    v = VoiceView("lead", note, 440.0)
+    v.level, v.present = level, present
+    r = Reading([], [v])
+    r.t = t
+    return r
+
+
+@pytest.mark.xfail(
+    strict=True,
+    reason="bug: a note-off that fails once on a port is lost for good: MidiVoice has "
+    "already forgotten the note and MidiSink._emit_each only logs the failure, so the synth "
+    "on that port holds the note until shutdown (no retry, no All Notes Off when the port "
+    "works again)",
+)
+def test_a_note_off_lost_to_a_one_off_port_error_is_made_good() -> None:
+    port = OnceFailingPort()
+    sink = MidiSink(MidiSettings(ramp_s=0.0), [port])
+    sink.open()
+    for i in range(5):  # a note held on key 60
+        sink.send(_lead(60.0, 0.5, True, 0.01 * i))
+    assert port.sounding(port.snapshot()) == {(0, 60): 1}
+    port.arm()  # the very next message, the note-off of the silence, fails
+    sink.silence("sensor lost")
+    for i in range(5, 20):  # the sensor is back, the hand elsewhere: key 72
+        sink.send(_lead(72.0, 0.5, True, 0.01 * i))
+    # The synth should hold only the note being played now.
+    assert port.sounding(port.snapshot()) == {(0, 72): 1}
+    sink.close()
 
 
 def note_events(msgs: Sequence[bytes]) -> list[tuple[bool, tuple[int, int]]]:
@@ -1114,14 +1168,17 @@ def test_load_held_16_channels_1khz_for_60_s() -> None:
     ten minutes and prints the figures. The checks compare the code with itself (no
     wall-clock goal): nothing dropped, memory flat after 10 s of warm-up, the p99 latency
     of the last 10 s within twice that of the first 10 s after warm-up (plus 1 ms of
-    scheduling noise), and the MIDI streams held at their cap of 100 messages a second
-    while frames come ten times faster (coalesced, not queued).
+    scheduling noise; each window's p99 is the median of its ten per-second p99 values, so
+    one second of other programs' load does not decide it), and the MIDI streams held at
+    their cap of 100 messages a second while frames come ten times faster (coalesced, not
+    queued).
     """
     soak = _soak_module()
     r = soak.run_load(60.0, warmup_s=10.0, window_s=10.0, max_rate_hz=100.0)
     print(f"\nload: sent {r.frames_sent}, processed {r.frames_processed}, "
           f"latency p50 {r.p50_s * 1e3:.3f} ms p99 {r.p99_s * 1e3:.3f} ms "
-          f"(first {r.p99_first_s * 1e3:.3f}, last {r.p99_last_s * 1e3:.3f}) max "
+          f"(first {r.p99_first_s * 1e3:.3f}, last {r.p99_last_s * 1e3:.3f}; typical first "
+          f"{r.typical_p99_first_s * 1e3:.3f}, last {r.typical_p99_last_s * 1e3:.3f}) max "
           f"{r.max_s * 1e3:.2f} ms, RSS growth {r.rss_growth_mb:.3f} MB, bends/s max "
           f"{r.bend_per_s_max}, levels/s max {r.level_per_s_max}, MIDI {r.counts}")
     assert r.daemon_error is None
@@ -1133,8 +1190,9 @@ def test_load_held_16_channels_1khz_for_60_s() -> None:
     assert r.frames_processed == r.frames_sent
     # Memory flat after warm-up (VmRSS of this process, which holds the daemon).
     assert r.rss_growth_mb <= 1.0, r.rss_samples_kb
-    # Latency does not drift.
-    assert r.p99_last_s <= 2.0 * r.p99_first_s + 0.001
+    # Latency does not drift: the typical p99 (median of the per-second p99 values) of the
+    # last 10 s is within twice that of the first 10 s after warm-up, plus 1 ms.
+    assert r.typical_p99_last_s <= 2.0 * r.typical_p99_first_s + 0.001
     # The flood is coalesced at the cap: no stream goes over 100 a second (plus what a
     # note-on forces out), and the cap was reached, so the flood was real.
     assert r.cap_excess == []

@@ -230,12 +230,6 @@ def test_malformed_requests_get_an_error_reply_and_change_nothing(live: Any) -> 
 
 
 @pytest.mark.filterwarnings("ignore::pytest.PytestUnhandledThreadExceptionWarning")
-@pytest.mark.xfail(
-    strict=True,
-    reason="bug: bridge/control.py parse_request lets json.loads raise RecursionError for "
-    "deeply nested JSON (well under MAX_REQUEST); ControlServer._serve does not catch it, "
-    "so the client gets no error reply and the connection thread dies with a traceback",
-)
 def test_deeply_nested_request_gets_an_error_reply(live: Any) -> None:
     line = b"[" * 1500 + b"]" * 1500 + b"\n"  # 3001 bytes: inside the size limit
     assert len(line) <= MAX_REQUEST
@@ -440,12 +434,6 @@ def test_osc_control_input_configured_on_loopback_listens_only_there() -> None:
         ctl.stop()
 
 
-@pytest.mark.xfail(
-    strict=True,
-    reason="hardening: OscSink.open leaves its UDP socket unbound, so the first sendto binds "
-    "it to 0.0.0.0:<ephemeral> and any host on the network can queue datagrams to it; bind "
-    "it to the loopback address when every destination of that family is loopback",
-)
 def test_osc_output_socket_is_not_reachable_from_other_hosts_with_loopback_destinations(
     osc_listener: Any,
 ) -> None:
@@ -569,6 +557,9 @@ def test_recording_refuses_to_write_through_a_planted_link(tmp_path: Path) -> No
 def test_midi_file_recording_does_not_follow_a_link_planted_at_its_temporary_name(
     tmp_path: Path,
 ) -> None:
+    """A link planted where an earlier version put its temporary file (the predictable
+    '.NAME.<pid>.tmp'), pointing at a file elsewhere: the recording must not write
+    through it (link following, CWE-59)."""
     victim = tmp_path / "elsewhere" / "victim.txt"
     victim.parent.mkdir()
     victim.write_bytes(b"precious\n")

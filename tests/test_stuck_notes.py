@@ -29,10 +29,9 @@ import mido
 from hypothesis import HealthCheck, event, given, settings
 from hypothesis import strategies as st
 
-from conftest import RecordingPort  # tests/conftest.py: the in-memory RawPort
-
 from bridge.outputs.midi import MidiSettings, MidiSink
 from bridge.pipeline import Reading, VoiceView
+from conftest import RecordingPort  # tests/conftest.py: the in-memory RawPort
 
 LEVEL_CC = 11  # MidiSettings.controller default: expression (MIDI 1.0, CC 11; LSB CC 43)
 

@@ -39,6 +39,7 @@ counted per destination and logged at a falling rate; they never stop the sink.
 from __future__ import annotations
 
 import errno
+import ipaddress
 import logging
 import math
 import re
@@ -385,6 +386,13 @@ class OscSink(Sink):
                 sock.setblocking(False)
                 self._socks[family] = sock
             targets.append((sock, addr, dest))
+        # A socket whose every destination is on this computer is bound to the loopback
+        # address, so nothing from the network can reach it (an unbound UDP socket binds
+        # to all interfaces on its first send).
+        for family, sock in self._socks.items():
+            addrs = [a for s_, a, _d in targets if s_ is sock]
+            if addrs and all(ipaddress.ip_address(a[0].split("%")[0]).is_loopback for a in addrs):
+                sock.bind(("127.0.0.1", 0) if family == socket.AF_INET else ("::1", 0))
         self._targets = targets
         self._opened = True
         self._closed = False
