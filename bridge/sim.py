@@ -546,7 +546,7 @@ def hold(
 def warmup(seed: int = 0) -> Performance:
     """Wren's warm-up at the Tin Lantern: glides, a stepped scale, vibrato, leaving, wandering."""
     p = Performance(seed, tremor_m=0.0003)
-    p.silence(1.0).glide(0.6, pitch=0.45, volume=0.25)
+    p.silence(1.0).glide(0.6, pitch=0.45, volume=0.42)
     p.glide(4.0, pitch=0.04, shape="linear").glide(4.0, pitch=0.45, shape="linear")
     p.steps(0.5, [0.45 - i * (0.42 / 12) for i in range(13)])
     p.glide(0.5, pitch=0.25).vibrato(3.0, rate_hz=5.8)

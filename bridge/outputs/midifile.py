@@ -141,6 +141,9 @@ class MidiFileRecorder:
             f.flush()
             os.fsync(f.fileno())
             f.close()
+            mask = os.umask(0)
+            os.umask(mask)
+            os.chmod(self._tmp, 0o666 & ~mask)  # mkstemp made it 0600; a take is a normal file
             os.replace(self._tmp, self.path)
         except OSError as exc:
             f.close()
