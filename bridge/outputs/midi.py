@@ -33,6 +33,7 @@ from __future__ import annotations
 
 import logging
 import math
+import time
 from collections.abc import Sequence
 from typing import Any, Literal, NamedTuple, Protocol
 
@@ -95,6 +96,9 @@ RPN: dict[str, tuple[int, int]] = {
 
 BEND_CENTRE = 8192
 BEND_MAX = 16383
+#: How often the sink checks that a JACK server under its ports is still the same one.
+PORT_CHECK_S = 0.2
+
 #: Release velocity sent with note-off (the spec's default for devices without it).
 NOTE_OFF_VELOCITY = 64
 #: A DIN link: 31,250 baud, 10 bits a byte, 3 bytes a message: ~1042 messages a second.
@@ -625,6 +629,9 @@ class MidiSink(Sink):
         self._last_t: float | None = None
         self._by_nibble = [0] * 16
         self.port_errors: dict[str, int] = {}
+        self._jack_ports: list[int] = []
+        self._next_check = 0.0
+        self.reopened = 0
 
     # -- contract ---------------------------------------------------------------------
 
@@ -638,6 +645,7 @@ class MidiSink(Sink):
 
             self.ports = open_ports(self.settings)
         self._senders = [(p.send, bool(getattr(p, "timed", False))) for p in self.ports]
+        self._jack_ports = [i for i, p in enumerate(self.ports) if getattr(p, "server", None)]
         self._opened = True
         log.info("MIDI output open: %s", ", ".join(p.name for p in self.ports) or "(no ports)")
         if self._n_voices:
@@ -651,6 +659,11 @@ class MidiSink(Sink):
         voices = reading.voices
         t = reading.t
         self._last_t = t
+        if self._jack_ports:
+            now = time.monotonic()
+            if now >= self._next_check:
+                self._next_check = now + PORT_CHECK_S
+                self._check_jack_ports()
         if len(voices) != len(self.voices):
             self._setup(len(voices))
         for v, mv in zip(voices, self.voices):
@@ -723,6 +736,34 @@ class MidiSink(Sink):
                     send(m, t) if timed else send(m)
                 except Exception as exc:  # noqa: BLE001
                     self._port_failed(i, exc)
+
+    def _check_jack_ports(self) -> None:
+        """Five times a second: a JACK port whose server stopped is counted as failing (its sends
+        vanish silently); when a server is back, the port is opened again on it and every
+        voice starts over (setup messages, then notes with the level ramping in)."""
+        from bridge.outputs.midiports import abandon, jack_server_identity, open_port
+
+        now = jack_server_identity()
+        for i in self._jack_ports:
+            port = self.ports[i]
+            if now == port.server:  # type: ignore[attr-defined]
+                continue
+            if now is None:
+                self._port_failed(i, DeviceError("the JACK server stopped"))
+                continue
+            try:
+                fresh = open_port(self.settings, port.target)  # type: ignore[attr-defined]
+            except Exception as exc:  # noqa: BLE001 - the server is still starting: next time
+                self._port_failed(i, exc)
+                continue
+            # The old client belongs to a server that is gone: closing it (or letting it be
+            # collected) crashes inside the JACK library, so it is kept, unused, for good.
+            abandon(port)
+            self.ports[i] = fresh
+            self._senders[i] = (fresh.send, bool(getattr(fresh, "timed", False)))
+            self.reopened += 1
+            log.warning("MIDI port %s reopened on the restarted JACK server", fresh.name)
+            self._setup(len(self.voices))  # note offs everywhere, then setup on every port
 
     def _port_failed(self, i: int, exc: Exception) -> None:
         name = self.ports[i].name

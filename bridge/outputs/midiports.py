@@ -87,6 +87,10 @@ class RtMidiPort:
         self._mido = mido_port
         self.name = name
         self.close_wait_s = close_wait_s
+        #: JACK only: the server this port lives on (see jack_server_identity), and what
+        #: to reopen (None: our virtual port) when that server comes back.
+        self.server: tuple[int, int] | None = None
+        self.target: str | None = None
         rt = getattr(mido_port, "_rt", None)  # mido's backend keeps the rtmidi.MidiOut here
         if rt is not None:
             self.send = rt.send_message  # type: ignore[method-assign]
@@ -191,7 +195,41 @@ def open_port(settings: MidiSettings, target: str | None = None) -> RawPort:
     except (OSError, RuntimeError) as exc:
         raise _system_error(api, exc) from exc
     log.info("MIDI port open (%s): %s", api, name)
-    return RtMidiPort(mido_port, name, close_wait_s=settings.close_wait_s if api == "jack" else 0.0)
+    port = RtMidiPort(mido_port, name, close_wait_s=settings.close_wait_s if api == "jack" else 0.0)
+    if api == "jack":
+        port.server = jack_server_identity()
+        port.target = target
+    return port
+
+
+def abandon(port: Any) -> None:
+    """Keep ``port`` alive for the rest of the process, never closed or collected.
+
+    An rtmidi client whose JACK server has gone away crashes the process when it is
+    closed or deallocated (seen with the dummy driver: a segmentation fault inside the
+    JACK library). One extra reference that is never released keeps its destructor from
+    ever running, even at interpreter exit; the cost is one small object per restart.
+    """
+    import ctypes
+
+    ctypes.pythonapi.Py_IncRef(ctypes.py_object(port))
+    log.debug("abandoned MIDI port %s of a stopped JACK server", getattr(port, "name", port))
+
+
+def jack_server_identity() -> tuple[int, int] | None:
+    """Which JACK server is running now: the identity of its socket file, or None.
+
+    jackd2 listens on /dev/shm/jack_<server>_<uid>_0 (server from JACK_DEFAULT_SERVER,
+    "default" otherwise). A client of a server that stopped gets no error from rtmidi,
+    its sends just vanish; comparing this identity with the one seen at open tells
+    "gone" (None) and "restarted" (another inode) apart, with one stat call.
+    """
+    server = os.environ.get("JACK_DEFAULT_SERVER") or "default"
+    try:
+        st = os.stat(f"/dev/shm/jack_{server}_{os.getuid()}_0")
+    except OSError:
+        return None
+    return (st.st_ino, st.st_ctime_ns)
 
 
 def open_ports(settings: MidiSettings) -> list[RawPort]:
