@@ -93,21 +93,32 @@ def parse_request(line: bytes) -> Status | Activate | Rebase | Reload | Watch:
         raise ControlError(f"{where}: {first['msg']}") from None
 
 
+#: Where the system service's socket lives (RuntimeDirectory=fieldbridge in the unit).
+SERVICE_RUNTIME = Path("/run/fieldbridge")
+
+
 def runtime_dir(override: str | os.PathLike[str] | None = None) -> Path:
-    """Folder of the control socket: option, FIELDBRIDGE_RUNTIME, $XDG_RUNTIME_DIR/fieldbridge,
-    or platformdirs' user runtime folder."""
+    """Folder of the control socket, in this order: the option, FIELDBRIDGE_RUNTIME,
+    RUNTIME_DIRECTORY (set by the service manager for the unit), the per-user runtime
+    folder ($XDG_RUNTIME_DIR/fieldbridge)."""
     if override:
         return Path(override)
-    env = os.environ.get("FIELDBRIDGE_RUNTIME")
-    if env:
-        return Path(env)
+    for var in ("FIELDBRIDGE_RUNTIME", "RUNTIME_DIRECTORY"):
+        env = os.environ.get(var)
+        if env:
+            return Path(env.split(":")[0])
     import platformdirs
 
     return Path(platformdirs.user_runtime_dir("fieldbridge"))
 
 
 def socket_path(override: str | os.PathLike[str] | None = None) -> Path:
-    return runtime_dir(override) / SOCKET_NAME
+    """The control socket; a client with no socket of its own finds the system service's
+    (``sudo fieldbridge use NAME`` on a headless board)."""
+    path = runtime_dir(override) / SOCKET_NAME
+    if override is None and not path.exists() and (SERVICE_RUNTIME / SOCKET_NAME).exists():
+        return SERVICE_RUNTIME / SOCKET_NAME
+    return path
 
 
 def _private_dir(path: Path) -> None:
