@@ -354,13 +354,13 @@ def run_checks(args: argparse.Namespace) -> list[Finding]:
     if rig is None:
         findings.append(Finding("board, MIDI, OSC", False, "not checked: the rig file could not "
                                 "be read", "correct the rig file first", "file"))
-        findings.append(check_control(control_path(args)))
+        findings.append(check_control(control_path(args, client=True)))
         return findings
     findings.append(check_serial(rig.source.url))
     findings += check_midi(rig.outputs.midi)
     findings += check_osc(rig.outputs.osc)
     findings += check_midifile(rig.outputs.midifile)
-    findings.append(check_control(control_path(args, rig)))
+    findings.append(check_control(control_path(args, rig, client=True)))
     return findings
 
 

@@ -34,14 +34,14 @@ def store_for(args: argparse.Namespace) -> Any:
     return Store.locate(getattr(args, "home", None), system=getattr(args, "service", False))
 
 
-def control_path(args: argparse.Namespace, rig: Any = None) -> Path:
+def control_path(args: argparse.Namespace, rig: Any = None, *, client: bool = False) -> Path:
     sock = getattr(getattr(rig, "control", None), "socket", None)
-    return Path(sock) if sock else socket_path(getattr(args, "runtime", None))
+    return Path(sock) if sock else socket_path(getattr(args, "runtime", None), client=client)
 
 
 def daemon_client(args: argparse.Namespace, rig: Any = None) -> ControlClient | None:
     """A client if a daemon answers on the control socket, else None."""
-    client = ControlClient(control_path(args, rig), timeout=3.0)
+    client = ControlClient(control_path(args, rig, client=True), timeout=3.0)
     try:
         client.request({"op": "status"})
     except (ControlError, OSError):

@@ -112,11 +112,12 @@ def runtime_dir(override: str | os.PathLike[str] | None = None) -> Path:
     return Path(platformdirs.user_runtime_dir("fieldbridge"))
 
 
-def socket_path(override: str | os.PathLike[str] | None = None) -> Path:
-    """The control socket; a client with no socket of its own finds the system service's
-    (``sudo fieldbridge use NAME`` on a headless board)."""
+def socket_path(override: str | os.PathLike[str] | None = None, *, client: bool = False) -> Path:
+    """The control socket. A client (``client=True``) with no daemon of its own finds the
+    system service's (``sudo fieldbridge use NAME`` on a headless board)."""
     path = runtime_dir(override) / SOCKET_NAME
-    if override is None and not path.exists() and (SERVICE_RUNTIME / SOCKET_NAME).exists():
+    if (client and override is None and not path.exists()
+            and (SERVICE_RUNTIME / SOCKET_NAME).exists()):
         return SERVICE_RUNTIME / SOCKET_NAME
     return path
 
