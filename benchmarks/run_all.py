@@ -1,9 +1,13 @@
 #!/usr/bin/env python3
 """Run every benchmark with one command and list the figures that have goals.
 
-    python benchmarks/run_all.py            # the full run (a few minutes on 2 cores)
-    python benchmarks/run_all.py --quick    # a short smoke run (well under a minute)
+    python benchmarks/run_all.py            # the full run (about 3 minutes on 2 cores)
+    python benchmarks/run_all.py --quick    # a short smoke run (about a minute)
     python benchmarks/run_all.py --only signal_quality
+    python benchmarks/run_all.py --only core_throughput --only signal_quality --only fuzz_decoders
+
+The last line is the in-process part alone (under a minute): the two daemon benchmarks
+start real daemon processes on pseudo-terminals and take most of the full run's time.
 
 Each benchmark runs in its own Python process (so one cannot warm up or slow down the
 next) and prints one ``name: value unit`` line per figure; lines starting with ``#``
@@ -32,6 +36,8 @@ BENCHMARKS: dict[str, tuple[list[str], list[str]]] = {
     "core_throughput": ([], ["--quick"]),
     "signal_quality": ([], ["--quick"]),
     "fuzz_decoders": (["--chunks", "300000"], ["--chunks", "20000"]),
+    "daemon_latency": ([], ["--quick"]),
+    "daemon_load": ([], ["--quick"]),
 }
 
 FIGURE = re.compile(

@@ -27,7 +27,13 @@ Figures (``name: value unit``)::
     soak_latency_p50_ms / _p99_ms / _max_ms    write -> all outputs, after warm-up
     soak_latency_p99_first_ms / _last_ms       the first and last 10 s windows (drift check)
     soak_latency_typical_p99_first_ms / _last_ms   median of the per-second p99 in those
-                                               windows (what the drift check compares)
+                                               windows
+    soak_latency_typical_p50_first_ms / _last_ms   the same for the median (a backlog
+                                               would raise it: the drift check compares it)
+    soak_daemon_latency_p99_ms                 read returned -> all outputs: the daemon's
+                                               own part of the latency, after warm-up
+    soak_daemon_latency_typical_p99_first_ms / _last_ms   its typical p99 in the first and
+                                               last windows (the drift check compares it)
     soak_rss_growth_mb                         VmRSS at the end minus after warm-up
     soak_midi_bend_per_s_max                   busiest pitch-bend stream, messages a second
     soak_midi_level_per_s_max                  busiest level stream, messages a second
@@ -57,16 +63,16 @@ from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
 
-HERE = Path(__file__).resolve().parent
-if str(HERE) not in sys.path:
-    sys.path.insert(0, str(HERE))
+from bridge.daemon import Daemon, Setup
+from bridge.frames import FrameSettings, encode_binary
+from bridge.outputs import Sink
+from bridge.outputs.midi import MidiSettings, MidiSink
+from bridge.pipeline import ChannelSettings, VoiceSettings
+from bridge.sources import PtyBoard, SourceSettings
 
-from bridge.daemon import Daemon, Setup  # noqa: E402
-from bridge.frames import FrameSettings, encode_binary  # noqa: E402
-from bridge.outputs import Sink  # noqa: E402
-from bridge.outputs.midi import MidiSettings, MidiSink  # noqa: E402
-from bridge.pipeline import ChannelSettings, VoiceSettings  # noqa: E402
-from bridge.sources import PtyBoard, SourceSettings  # noqa: E402
+#: The benchmarks folder (common.py, fuzz_decoders.py); put on sys.path only by main(), so
+#: that a test importing this module for run_load() leaves the import path alone.
+HERE = Path(__file__).resolve().parent
 
 RATE_HZ = 1000.0
 WINDOW_S = 1.0 / RATE_HZ
@@ -192,6 +198,7 @@ class LatencyProbe(Sink):
     def __init__(self, feed: Feed, capacity: int) -> None:
         self.feed = feed
         self.latency = array("d", [0.0]) * capacity
+        self.inside = array("d", [0.0]) * capacity
         self.at = array("d", [0.0]) * capacity
         self.count = 0
         self.capacity = capacity
@@ -202,27 +209,34 @@ class LatencyProbe(Sink):
 
     def send(self, reading: Any) -> None:
         now = time.perf_counter()
+        # reading.t is the daemon's time.monotonic() when the read that brought the frame
+        # returned: monotonic now minus it is the time spent inside the daemon.
+        inside = time.monotonic() - reading.t
         i = self.count
         if i < self.capacity and reading.seq is not None:
             self.latency[i] = now - self.feed.sent_at[reading.seq]
+            self.inside[i] = inside
             self.at[i] = now - self.t0
         self.count = i + 1
 
     def silence(self, reason: str) -> None:
         pass
 
-    def window(self, start_s: float, end_s: float) -> list[float]:
-        """Latencies (s) of the readings that arrived between start_s and end_s."""
+    def window(self, start_s: float, end_s: float, *, inside: bool = False) -> list[float]:
+        """Latencies (s) of the readings that arrived between start_s and end_s: from the
+        board's write (or, with ``inside``, from the daemon's read) to all outputs done."""
         n = min(self.count, self.capacity)
-        return [self.latency[i] for i in range(n) if start_s <= self.at[i] < end_s]
+        values = self.inside if inside else self.latency
+        return [values[i] for i in range(n) if start_s <= self.at[i] < end_s]
 
-    def typical_p99(self, start_s: float, end_s: float) -> float:
-        """The median over the whole seconds of [start_s, end_s) of each second's p99.
+    def typical(self, start_s: float, end_s: float, q: float, *, inside: bool = False
+                ) -> float:
+        """The median over the whole seconds of [start_s, end_s) of each second's q-quantile.
 
         One second in which other programs took the cores moves this figure by one rank
         out of ten, not to that second's value: it follows the code, not a passing burst.
         """
-        per_second = [percentile(self.window(a, a + 1.0), 0.99)
+        per_second = [percentile(self.window(a, a + 1.0, inside=inside), q)
                       for a in range(int(start_s), int(end_s))]
         per_second = [x for x in per_second if not math.isnan(x)]
         return statistics.median(per_second) if per_second else math.nan
@@ -307,6 +321,11 @@ class LoadResult:
     p99_last_s: float
     typical_p99_first_s: float
     typical_p99_last_s: float
+    typical_p50_first_s: float
+    typical_p50_last_s: float
+    inside_p99_s: float
+    inside_typical_p99_first_s: float
+    inside_typical_p99_last_s: float
     rss_after_warmup_kb: int
     rss_end_kb: int
     rss_samples_kb: list[int]
@@ -350,9 +369,8 @@ def _daemon_thread(daemon: Daemon) -> Iterator[dict[str, Any]]:
         yield box
     finally:
         if thread.is_alive():
-            daemon.request_stop()
+            daemon.request_stop()  # shutdown: outputs silenced and closed
             thread.join(10.0)
-        box["alive"] = thread.is_alive()
 
 
 def run_load(
@@ -398,8 +416,7 @@ def run_load(
                         n_rss += 1
                     if k == int(warmup_s):
                         rss_warm = rss_kb()
-                board.pause()
-                sent = board.frames_sent
+                board.pause()  # then let the daemon take every frame the pty still holds
                 _wait(lambda: daemon.counters.frames >= board.frames_sent
                       or box["error"] is not None, 10.0, step)
                 sent = board.frames_sent
@@ -416,7 +433,8 @@ def run_load(
     last = probe.window(seconds - window_s, seconds + 1.0)
     bend_max = level_max = 0
     excess: list[str] = []
-    interval_cap = int(math.floor(1.0 / (1.0 / max_rate_hz))) + 1  # sends 1/max_rate apart
+    # Sends at least 1/max_rate apart: at most max_rate + 1 of them in one second.
+    interval_cap = math.floor(max_rate_hz) + 1
     first_sec = int(warmup_s)
     for sec in range(first_sec, int(seconds)):
         for ch in range(VOICES):
@@ -444,8 +462,14 @@ def run_load(
         max_s=max(measured) if measured else math.nan,
         p99_first_s=percentile(first, 0.99),
         p99_last_s=percentile(last, 0.99),
-        typical_p99_first_s=probe.typical_p99(warmup_s, warmup_s + window_s),
-        typical_p99_last_s=probe.typical_p99(seconds - window_s, seconds),
+        typical_p99_first_s=probe.typical(warmup_s, warmup_s + window_s, 0.99),
+        typical_p99_last_s=probe.typical(seconds - window_s, seconds, 0.99),
+        typical_p50_first_s=probe.typical(warmup_s, warmup_s + window_s, 0.50),
+        typical_p50_last_s=probe.typical(seconds - window_s, seconds, 0.50),
+        inside_p99_s=percentile(probe.window(warmup_s, seconds + 1.0, inside=True), 0.99),
+        inside_typical_p99_first_s=probe.typical(warmup_s, warmup_s + window_s, 0.99,
+                                                 inside=True),
+        inside_typical_p99_last_s=probe.typical(seconds - window_s, seconds, 0.99, inside=True),
         rss_after_warmup_kb=rss_warm,
         rss_end_kb=rss_end,
         rss_samples_kb=rss[:n_rss],
@@ -479,6 +503,11 @@ def report(r: LoadResult) -> None:
     figure("soak_latency_p99_last_ms", r.p99_last_s * 1e3, "ms")
     figure("soak_latency_typical_p99_first_ms", r.typical_p99_first_s * 1e3, "ms")
     figure("soak_latency_typical_p99_last_ms", r.typical_p99_last_s * 1e3, "ms")
+    figure("soak_latency_typical_p50_first_ms", r.typical_p50_first_s * 1e3, "ms")
+    figure("soak_latency_typical_p50_last_ms", r.typical_p50_last_s * 1e3, "ms")
+    figure("soak_daemon_latency_p99_ms", r.inside_p99_s * 1e3, "ms")
+    figure("soak_daemon_latency_typical_p99_first_ms", r.inside_typical_p99_first_s * 1e3, "ms")
+    figure("soak_daemon_latency_typical_p99_last_ms", r.inside_typical_p99_last_s * 1e3, "ms")
     figure("soak_rss_growth_mb", r.rss_growth_mb, "MB", goal="<= 1")
     figure("soak_midi_bend_per_s_max", r.bend_per_s_max, "messages/s")
     figure("soak_midi_level_per_s_max", r.level_per_s_max, "messages/s")
@@ -501,6 +530,8 @@ def main(argv: Sequence[str] | None = None) -> int:
     ap.add_argument("--skip-fuzz", action="store_true")
     ap.add_argument("--skip-load", action="store_true")
     args = ap.parse_args(argv)
+    if str(HERE) not in sys.path:
+        sys.path.insert(0, str(HERE))
     from common import header, note
 
     header("soak")

@@ -329,6 +329,8 @@ class Engine:
             # c_from_raw inlined: c = N0/N - 1 (counts) or P/P0 - 1 (periods).
             if x > 0.0 and base > 0.0:
                 c = (base / x - 1.0) if s.count else (x / base - 1.0)
+                if c > 10.0:  # the same bound as calibrate.c_from_raw: always finite
+                    c = 10.0
             else:
                 c = 0.0
             view.c = c

@@ -441,10 +441,16 @@ class SerialSource:
             self._set_state(LinkState.QUIET, f"no {what} for {self.settings.quiet_after_s:g} s")
 
     def _lose(self, reason: str) -> None:
-        self._release()
+        self._held_error = None
+        with self._port_lock:
+            port, self._port = self._port, None
         delay = self.backoff.next()
-        self._next_attempt = self._clock() + delay
+        # Report first, close after: outputs go silent at once, even where closing is slow
+        # (pyserial's socket close waits 0.3 s).
         self._set_state(LinkState.LOST, f"{reason}; reopening in {delay:.2f} s")
+        if port is not None:
+            self._close_quietly(port)
+        self._next_attempt = self._clock() + delay
 
     def _release(self) -> None:
         self._held_error = None

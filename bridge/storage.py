@@ -26,6 +26,7 @@ they equal their default, and a file whose bytes would not change is not written
 from __future__ import annotations
 
 import errno
+import glob
 import logging
 import math
 import os
@@ -96,6 +97,7 @@ def atomic_write(path: Path | str, data: bytes, *, backup: bool = True) -> bool:
         existed = path.exists()
 
     folder = path.parent
+    _sweep_stale_temporaries(path)
     tmp = _write_temporary(path, data)
     try:
         if existed:
@@ -109,6 +111,21 @@ def atomic_write(path: Path | str, data: bytes, *, backup: bool = True) -> bool:
     _fsync_folder(folder)
     log.debug("wrote %s (%d bytes)", path, len(data))
     return True
+
+
+#: A temporary file older than this was left by a write that was killed (power cut).
+STALE_TMP_S = 3600.0
+
+
+def _sweep_stale_temporaries(path: Path) -> None:
+    """Remove hidden temporaries of ``path`` left behind by killed writes (an hour old)."""
+    now = datetime.now().timestamp()
+    for old in path.parent.glob(f".{glob.escape(path.name)}.*.tmp"):
+        try:
+            if now - old.lstat().st_mtime > STALE_TMP_S:
+                old.unlink()
+        except OSError:
+            pass  # gone already, or not ours to remove: leave it
 
 
 def _write_temporary(path: Path, data: bytes) -> Path:

@@ -152,7 +152,16 @@ class RecordingPort:
     def sounding(cls, msgs: Sequence[bytes]) -> dict[tuple[int, int], int]:
         """(channel, note) -> how many note-ons are still unmatched after ``msgs``."""
         held: dict[tuple[int, int], int] = {}
-        for e in cls.notes(msgs):
+        for m in msgs:
+            if m[0] >> 4 == CONTROL_CHANGE and len(m) == 3 and m[1] in (120, 123):
+                # All Sound Off / All Notes Off end every note on the channel
+                # (MIDI 1.0 Detailed Specification, channel mode messages)
+                held = {k: n for k, n in held.items() if k[0] != m[0] & 0x0F}
+                continue
+            notes = cls.notes([m])
+            if not notes:
+                continue
+            e = notes[0]
             key = (e.channel, e.note)
             if e.on:
                 held[key] = held.get(key, 0) + 1

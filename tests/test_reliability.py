@@ -796,13 +796,6 @@ def _lead(note: float, level: float, present: bool, t: float) -> Any:
     return r
 
 
-@pytest.mark.xfail(
-    strict=True,
-    reason="bug: a note-off that fails once on a port is lost for good: MidiVoice has "
-    "already forgotten the note and MidiSink._emit_each only logs the failure, so the synth "
-    "on that port holds the note until shutdown (no retry, no All Notes Off when the port "
-    "works again)",
-)
 def test_a_note_off_lost_to_a_one_off_port_error_is_made_good() -> None:
     port = OnceFailingPort()
     sink = MidiSink(MidiSettings(ramp_s=0.0), [port])
@@ -1166,21 +1159,24 @@ def test_load_held_16_channels_1khz_for_60_s() -> None:
 
     The run and its observers live in benchmarks/soak.py, which runs the same thing for
     ten minutes and prints the figures. The checks compare the code with itself (no
-    wall-clock goal): nothing dropped, memory flat after 10 s of warm-up, the p99 latency
-    of the last 10 s within twice that of the first 10 s after warm-up (plus 1 ms of
-    scheduling noise; each window's p99 is the median of its ten per-second p99 values, so
-    one second of other programs' load does not decide it), and the MIDI streams held at
-    their cap of 100 messages a second while frames come ten times faster (coalesced, not
-    queued).
+    wall-clock goal): nothing dropped, memory flat after 10 s of warm-up, latency that
+    does not drift (the last 10 s against the first 10 s after warm-up, within twice plus
+    1 ms; each window's figure is the median of its ten per-second values, so one second
+    of other programs' load does not decide it), and the MIDI streams held at their cap of
+    100 messages a second while frames come ten times faster (coalesced, not queued).
     """
     soak = _soak_module()
     r = soak.run_load(60.0, warmup_s=10.0, window_s=10.0, max_rate_hz=100.0)
-    print(f"\nload: sent {r.frames_sent}, processed {r.frames_processed}, "
-          f"latency p50 {r.p50_s * 1e3:.3f} ms p99 {r.p99_s * 1e3:.3f} ms "
-          f"(first {r.p99_first_s * 1e3:.3f}, last {r.p99_last_s * 1e3:.3f}; typical first "
-          f"{r.typical_p99_first_s * 1e3:.3f}, last {r.typical_p99_last_s * 1e3:.3f}) max "
-          f"{r.max_s * 1e3:.2f} ms, RSS growth {r.rss_growth_mb:.3f} MB, bends/s max "
-          f"{r.bend_per_s_max}, levels/s max {r.level_per_s_max}, MIDI {r.counts}")
+    ms = 1e3
+    print(f"\nload: sent {r.frames_sent}, processed {r.frames_processed}; end to end p50 "
+          f"{r.p50_s * ms:.3f} ms, p99 {r.p99_s * ms:.3f} ms, max {r.max_s * ms:.2f} ms, "
+          f"typical p99 first/last {r.typical_p99_first_s * ms:.3f}/"
+          f"{r.typical_p99_last_s * ms:.3f} ms, typical p50 first/last "
+          f"{r.typical_p50_first_s * ms:.3f}/{r.typical_p50_last_s * ms:.3f} ms; inside the "
+          f"daemon p99 {r.inside_p99_s * ms:.3f} ms, typical first/last "
+          f"{r.inside_typical_p99_first_s * ms:.3f}/{r.inside_typical_p99_last_s * ms:.3f} ms; "
+          f"RSS growth {r.rss_growth_mb:.3f} MB; bends/s max {r.bend_per_s_max}, levels/s "
+          f"max {r.level_per_s_max}; MIDI {r.counts}")
     assert r.daemon_error is None
     assert r.frames_sent > 10_000  # the run carried load (a sanity check of the harness)
     # No dropped frame: the board's writes all fit, the decoder saw no gap or damage,
@@ -1190,9 +1186,14 @@ def test_load_held_16_channels_1khz_for_60_s() -> None:
     assert r.frames_processed == r.frames_sent
     # Memory flat after warm-up (VmRSS of this process, which holds the daemon).
     assert r.rss_growth_mb <= 1.0, r.rss_samples_kb
-    # Latency does not drift: the typical p99 (median of the per-second p99 values) of the
-    # last 10 s is within twice that of the first 10 s after warm-up, plus 1 ms.
-    assert r.typical_p99_last_s <= 2.0 * r.typical_p99_first_s + 0.001
+    # Latency does not drift. The daemon's own latency (read returned -> every output
+    # done): its typical p99 over the last 10 s is within twice that of the first 10 s
+    # after warm-up, plus 1 ms. End to end (board write -> every output done) the typical
+    # median must hold the same way: a backlog would raise every frame's latency. (The
+    # end-to-end p99 is printed, not checked: it carries the other programs' load on the
+    # cores, which can change between the two windows.)
+    assert r.inside_typical_p99_last_s <= 2.0 * r.inside_typical_p99_first_s + 0.001
+    assert r.typical_p50_last_s <= 2.0 * r.typical_p50_first_s + 0.001
     # The flood is coalesced at the cap: no stream goes over 100 a second (plus what a
     # note-on forces out), and the cap was reached, so the flood was real.
     assert r.cap_excess == []

@@ -229,7 +229,6 @@ def test_malformed_requests_get_an_error_reply_and_change_nothing(live: Any) -> 
     assert len(port.sounding(port.snapshot())) == 1
 
 
-@pytest.mark.filterwarnings("ignore::pytest.PytestUnhandledThreadExceptionWarning")
 def test_deeply_nested_request_gets_an_error_reply(live: Any) -> None:
     line = b"[" * 1500 + b"]" * 1500 + b"\n"  # 3001 bytes: inside the size limit
     assert len(line) <= MAX_REQUEST

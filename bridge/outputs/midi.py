@@ -632,6 +632,7 @@ class MidiSink(Sink):
         self._jack_ports: list[int] = []
         self._next_check = 0.0
         self.reopened = 0
+        self._dirty: set[int] = set()  # ports that failed since their last good send
 
     # -- contract ---------------------------------------------------------------------
 
@@ -709,8 +710,25 @@ class MidiSink(Sink):
         for mv in self.voices:
             self._emit(mv.start(), self._last_t)
 
+    def _make_good(self, t: float | None) -> None:
+        """A port that failed may have missed a note-off: once it takes messages again it
+        gets All Notes Off (CC123) on every channel the voices use, before anything else."""
+        for i in sorted(self._dirty):
+            send, timed = self._senders[i]
+            try:
+                for mv in self.voices:
+                    for ch in mv.channels:
+                        m = cc(ch, CC["all_notes_off"], 0)
+                        send(m, t) if timed else send(m)
+            except Exception as exc:  # noqa: BLE001 - still failing: try again next time
+                log.debug("MIDI port %s still failing: %s", self.ports[i].name, exc)
+                continue
+            self._dirty.discard(i)
+
     def _emit(self, msgs: list[bytes], t: float | None) -> None:
         """Hot path: every message to every port; a failing port costs one log line."""
+        if self._dirty:
+            self._make_good(t)
         counts = self._by_nibble
         for m in msgs:
             counts[m[0] >> 4] += 1
@@ -727,6 +745,8 @@ class MidiSink(Sink):
 
     def _emit_each(self, msgs: list[bytes], t: float | None) -> None:
         """Like :meth:`_emit`, but a failure skips only one message (note-offs must try)."""
+        if self._dirty:
+            self._make_good(t)
         counts = self._by_nibble
         for m in msgs:
             counts[m[0] >> 4] += 1
@@ -766,6 +786,7 @@ class MidiSink(Sink):
             self._setup(len(self.voices))  # note offs everywhere, then setup on every port
 
     def _port_failed(self, i: int, exc: Exception) -> None:
+        self._dirty.add(i)
         name = self.ports[i].name
         n = self.port_errors.get(name, 0) + 1
         self.port_errors[name] = n

@@ -7,9 +7,9 @@ The server is then stopped (as when a session's audio server crashes or is resta
 and started again under the same name.
 
 What is promised: the daemon keeps running through the outage and after it, frames keep
-flowing, the other outputs keep playing and end their notes, and shutdown is clean. What
-is not yet the case (marked as a known bug below): the MIDI output does not come back on
-the restarted server by itself; the daemon must be restarted.
+flowing, the other outputs keep playing and end their notes, and shutdown is clean; the
+loss shows in the MIDI output's port errors, and its port comes back by itself on the
+restarted server, where a peer hears the next note.
 """
 
 from __future__ import annotations
