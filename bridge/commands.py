@@ -159,9 +159,21 @@ def cmd_run(args: argparse.Namespace) -> int:
         control = None
         if rig.control is None or rig.control.enabled:
             control = control_path(args, rig)
+        factory = None
+        if args.replay:
+            from .recording import RecordingSource
+            from .tools import recording_path
+
+            path = recording_path(store, args.replay)
+
+            def factory(stop: threading.Event, on_state: Any) -> Any:
+                return RecordingSource(path, realtime=not args.fast, loop=args.loop, stop=stop,
+                                       on_state=on_state)
+
         daemon = Daemon(
             setup,
             sinks,
+            source_factory=factory,
             loader=lambda name: setup_for(store_for(args), name),
             control_path=control,
             osc_control=rig.control.osc_listen if rig.control else None,
@@ -505,7 +517,8 @@ def register(cli: Any) -> None:
 
     p = cli.add("run", "start the daemon: read the board, play the active venue profile",
                 ["fieldbridge run", "fieldbridge run --venue tin-lantern --show",
-                 "fieldbridge run --simulate --seconds 30 --show"], cmd_run)
+                 "fieldbridge run --simulate --seconds 30 --show",
+                 "fieldbridge run --replay friday-set --show"], cmd_run)
     common(p, json_out=False)
     p.add_argument("--venue", help="activate this venue profile first")
     p.add_argument("--service", action="store_true",
@@ -516,6 +529,10 @@ def register(cli: Any) -> None:
                    help="read a simulated board (the rig's [sim] settings) on a pseudo-terminal")
     p.add_argument("--performance", default="warmup", help="simulated scenario (with --simulate)")
     p.add_argument("--seed", type=int, default=0)
+    p.add_argument("--replay", metavar="RECORDING",
+                   help="play a recording (fieldbridge tape) instead of reading the board")
+    p.add_argument("--fast", action="store_true", help="with --replay: as fast as possible")
+    p.add_argument("--loop", action="store_true", help="with --replay: start over at the end")
 
     p = cli.add("soundcheck", "capture a venue profile: guided holds, report, save, activate",
                 ["fieldbridge soundcheck tin-lantern",

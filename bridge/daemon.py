@@ -102,6 +102,8 @@ class Daemon:
         notifier: Notifier | None = None,
         on_second: Callable[[Daemon], None] | None = None,
         run_for_s: float | None = None,
+        source_factory: Callable[[threading.Event, Callable[[StateChange], Any]], Any]
+        | None = None,
     ) -> None:
         self.setup = setup
         self.sinks = list(sinks)
@@ -112,6 +114,9 @@ class Daemon:
         self.notifier = notifier or Notifier.from_env()
         self.on_second = on_second
         self.run_for_s = run_for_s
+        #: Builds the byte source from (stop event, state callback); default: the rig's
+        #: serial URL. A recording (bridge.recording.RecordingSource) fits the same slot.
+        self.source_factory = source_factory
         self.counters = Counters()
         self.stop_event = threading.Event()
         self._reload = threading.Event()
@@ -173,9 +178,13 @@ class Daemon:
         self.decoder = make_decoder(self.setup.frames, [c.name for c in self.setup.channels])
         for sink in self.sinks:
             sink.open()
-        self.source = SerialSource(
-            self.setup.source, stop=self.stop_event, on_state=self._on_link, quiet_by="frames"
-        )
+        if self.source_factory is not None:
+            self.source = self.source_factory(self.stop_event, self._on_link)
+        else:
+            self.source = SerialSource(
+                self.setup.source, stop=self.stop_event, on_state=self._on_link,
+                quiet_by="frames",
+            )
         if self.control_path is not None:
             self.control = ControlServer(self.control_path, self.submit)
             self.control.start()
@@ -197,6 +206,7 @@ class Daemon:
         deadline = None if self.run_for_s is None else time.monotonic() + self.run_for_s
         wait = min(0.05, self.setup.source.read_timeout_s)
         watch = self.control
+        note_frame = getattr(src, "note_frame", lambda t: None)
         while not self.stop_event.is_set():
             data = src.read(wait)
             if src.generation != gen:
@@ -207,7 +217,7 @@ class Daemon:
                 engine = self.engine
                 assert engine is not None
                 for frame in dec.feed(data):
-                    src.note_frame(now)
+                    note_frame(now)
                     if self.first_frame_at is None:
                         self.first_frame_at = now
                     reading = engine.process(frame.values, frame.seq, now)
@@ -238,6 +248,8 @@ class Daemon:
                 if self.on_second is not None:
                     self.on_second(self)
             if deadline is not None and now >= deadline:
+                break
+            if getattr(src, "finished", False):  # a recording played to its end
                 break
 
     def shutdown(self) -> None:
