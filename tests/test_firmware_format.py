@@ -14,7 +14,6 @@ from __future__ import annotations
 import binascii
 import ctypes
 import os
-import shutil
 import struct
 import subprocess
 from pathlib import Path
@@ -24,24 +23,7 @@ from cobs import cobs
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
-try:  # the shared peer helper (tests/e2e/peers.py); same behaviour if it is not there yet
-    from e2e.peers import require
-except ImportError:  # pragma: no cover - depends on the checkout
-
-    def require(program: str) -> str:
-        path = shutil.which(program)
-        if path is None:
-            reason = f"{program} is not installed"
-            if os.environ.get("FIELDBRIDGE_REQUIRE_PEERS") == "1":
-                pytest.fail(reason + " (FIELDBRIDGE_REQUIRE_PEERS=1)")
-            pytest.skip(reason)
-        return path
-
-
-def need(program: str) -> str:
-    """The program's path; skips (or fails under FIELDBRIDGE_REQUIRE_PEERS=1) without it."""
-    require(program)
-    return shutil.which(program) or program
+from e2e.peers import require as need  # path, or skip (fail with FIELDBRIDGE_REQUIRE_PEERS=1)
 
 
 pytestmark = pytest.mark.peer
