@@ -49,19 +49,24 @@ def daemon_client(args: argparse.Namespace, rig: Any = None) -> ControlClient | 
     return client
 
 
-def setup_for(store: Any, name: str | None = None) -> Any:
+def named_venue(store: Any, name: str | None) -> tuple[str, Any]:
+    """``name`` (None: the active venue) and its loaded profile; says what to do if none."""
+    name = name or store.active
+    if not name:
+        raise ConfigError(
+            f"no venue named and none active in {store.root}: name one, or run "
+            "'fieldbridge soundcheck NAME' or 'fieldbridge use NAME'"
+        )
+    return name, store.load_venue(name)
+
+
+def setup_for(store: Any, name: str | None = None, rig: Any = None) -> Any:
     """The daemon Setup for venue ``name`` (None: the active one) from the store's files."""
     from .daemon import Setup
     from .profiles import apply_venue
 
-    rig = store.load_rig()
-    name = name or store.active
-    if name is None:
-        raise ConfigError(
-            f"no venue profile is active in {store.root}: run 'fieldbridge soundcheck NAME' "
-            "or 'fieldbridge use NAME'"
-        )
-    venue = store.load_venue(name)
+    rig = rig or store.load_rig()
+    name, venue = named_venue(store, name)
     played = apply_venue(rig, venue)
     return Setup(
         channels=list(played.channels),
@@ -148,8 +153,8 @@ def cmd_run(args: argparse.Namespace) -> int:
     store_name = args.venue
     if store_name:
         store.activate(store_name)
-    setup = setup_for(store)
     rig = store.load_rig()
+    setup = setup_for(store, rig=rig)
     notifier = Notifier.from_env()
     stop = threading.Event()
     with _maybe_sim(rig, args) as url:
@@ -270,10 +275,7 @@ def reports_for(rig: Any, venue: Any) -> dict[str, Any]:
 
 def cmd_show(args: argparse.Namespace) -> int:
     store = store_for(args)
-    name = args.name or store.active
-    if not name:
-        raise ConfigError("no venue named and none active: fieldbridge show NAME")
-    venue = store.load_venue(name)
+    name, venue = named_venue(store, args.name)
     reports = reports_for(store.load_rig(), venue)
     obj = {"name": name, "active": name == store.active,
            "profile": venue.model_dump(mode="json"),
@@ -422,10 +424,7 @@ def cmd_zero(args: argparse.Namespace) -> int:
 
     store = store_for(args)
     rig = store.load_rig()
-    name = args.name or store.active
-    if not name:
-        raise ConfigError("no venue named and none active: fieldbridge zero NAME")
-    venue = store.load_venue(name)
+    name, venue = named_venue(store, args.name)
     rate = rig.board.rate_hz
     n = max(10, round(args.seconds * rate))
     with ExitStack() as stack:

@@ -17,12 +17,20 @@ from typing import Any
 
 from .commands import (
     emit,
+    named_venue,
     setup_for,
     store_for,
 )
 from .errors import ConfigError
-
-from .tools import note_ticks, pyplot_figure, recordings_listing, save_figure, sigterm_as_interrupt, recording_path, split_note
+from .tools import (
+    note_ticks,
+    pyplot_figure,
+    recording_path,
+    recordings_listing,
+    save_figure,
+    sigterm_as_interrupt,
+    split_note,
+)
 
 log = logging.getLogger(__name__)
 
@@ -429,10 +437,7 @@ def cmd_plot(args: argparse.Namespace) -> int:
 
     store = store_for(args)
     rig = store.load_rig()
-    name = args.name or store.active
-    if not name:
-        raise ConfigError("no venue named and none active: fieldbridge plot NAME --out FILE.png")
-    venue = store.load_venue(name)
+    name, venue = named_venue(store, args.name)
     try:
         played = apply_venue(rig, venue)
     except ConfigError as e:
